@@ -1,0 +1,385 @@
+package vae
+
+import (
+	"context"
+	"fmt"
+	"math"
+	"math/rand/v2"
+
+	"gonum.org/v1/gonum/mat"
+	"gorgonia.org/tensor"
+
+	"lowerbound.dev/layers"
+	"lowerbound.dev/vae/dataset"
+)
+
+// maxInferBatch bounds the rows an inference program handles at once.
+// Inference programs come in power-of-two batch sizes up to this bound, so a
+// model keeps at most a handful of compiled graphs per kind.
+const maxInferBatch = 128
+
+func inferBatch(n int) int {
+	b := 1
+	for b < n && b < maxInferBatch {
+		b *= 2
+	}
+	return b
+}
+
+// checkData validates that data fits the model.
+func (m *Model) checkData(where string, data *dataset.Set) error {
+	if data == nil {
+		return fmt.Errorf("vae.%s: data: nil: %w", where, layers.ErrInvalidArgument)
+	}
+	if data.Features() != m.width {
+		return fmt.Errorf("vae.%s: data: %d features per record, model wants %d: %w", where, data.Features(), m.width, layers.ErrInvalidArgument)
+	}
+	if m.cfg.Classes > 0 {
+		if !data.HasLabels() {
+			return fmt.Errorf("vae.%s: data: conditional model needs labels: %w", where, ErrLabel)
+		}
+		for i := 0; i < data.Len(); i++ {
+			if l := data.Label(i); l < 0 || l >= m.cfg.Classes {
+				return fmt.Errorf("vae.%s: data: record %d has label %d, want 0..%d: %w", where, i, l, m.cfg.Classes-1, ErrLabel)
+			}
+		}
+	}
+	return nil
+}
+
+// checkLabels validates explicit labels for n rows.
+func (m *Model) checkLabels(where string, labels []int, n int) error {
+	if m.cfg.Classes == 0 {
+		if labels != nil {
+			return fmt.Errorf("vae.%s: labels: %w", where, ErrNotConditional)
+		}
+		return nil
+	}
+	if len(labels) != n {
+		return fmt.Errorf("vae.%s: labels: have %d, want one per row (%d): %w", where, len(labels), n, ErrLabel)
+	}
+	for i, l := range labels {
+		if l < 0 || l >= m.cfg.Classes {
+			return fmt.Errorf("vae.%s: labels: row %d has label %d, want 0..%d: %w", where, i, l, m.cfg.Classes-1, ErrLabel)
+		}
+	}
+	return nil
+}
+
+// fillInputs writes records idx of data (padded with zero rows up to the
+// program's batch) and their labels into p's input tensors, repeating them
+// K times where the program needs that.
+func (m *Model) fillInputs(p *program, data *dataset.Set, idx []int) error {
+	b, k := p.key.batch, p.key.k
+	if p.x != nil {
+		zero(p.x)
+		if err := fillPrefix(p.x, data, idx, m.width); err != nil {
+			return err
+		}
+		if p.xRep != nil {
+			repeatBlock(p.xRep, p.x, k)
+		}
+	}
+	if m.cfg.Classes > 0 {
+		labels := make([]int, b)
+		for i, r := range idx {
+			labels[i] = data.Label(r)
+		}
+		m.fillLabels(p, labels)
+	}
+	return nil
+}
+
+// fillLabels writes one-hot labels (and label planes) for a full batch.
+func (m *Model) fillLabels(p *program, labels []int) {
+	c := m.cfg.Classes
+	if p.y != nil {
+		zero(p.y)
+		for i, l := range labels {
+			setAt(p.y, i*c+l, 1)
+		}
+		if p.yRep != nil {
+			repeatBlock(p.yRep, p.y, p.key.k)
+		}
+	}
+	if p.planes != nil {
+		zero(p.planes)
+		hw := m.cfg.InputShape[1] * m.cfg.InputShape[2]
+		for i, l := range labels {
+			start := (i*c + l) * hw
+			for j := 0; j < hw; j++ {
+				setAt(p.planes, start+j, 1)
+			}
+		}
+	}
+}
+
+func zero(t *tensor.Dense) { t.Zero() }
+
+func setAt(t *tensor.Dense, i int, v float64) {
+	switch d := t.Data().(type) {
+	case []float64:
+		d[i] = v
+	case []float32:
+		d[i] = float32(v)
+	}
+}
+
+func fillPrefix(t *tensor.Dense, data *dataset.Set, idx []int, width int) error {
+	switch d := t.Data().(type) {
+	case []float64:
+		return data.Fill(d[:len(idx)*width], idx)
+	case []float32:
+		return data.Fill(d[:len(idx)*width], idx)
+	}
+	return fmt.Errorf("vae: unsupported dtype %v", t.Dtype())
+}
+
+// repeatBlock writes src K times one after the other into dst.
+func repeatBlock(dst, src *tensor.Dense, k int) {
+	switch d := dst.Data().(type) {
+	case []float64:
+		s := src.Data().([]float64)
+		for i := 0; i < k; i++ {
+			copy(d[i*len(s):], s)
+		}
+	case []float32:
+		s := src.Data().([]float32)
+		for i := 0; i < k; i++ {
+			copy(d[i*len(s):], s)
+		}
+	}
+}
+
+// fillNoise fills the (K*B, D) noise tensor so that the noise of record
+// r (its index within the call) depends only on seed and r. This makes
+// results independent of how records are split into batches, and so
+// identical between serial and concurrent calls.
+func fillNoise(t *tensor.Dense, seed uint64, first, count, b, k, d int) {
+	zero(t)
+	for i := 0; i < count; i++ {
+		rng := rand.New(rand.NewPCG(seed, uint64(first+i)))
+		for s := 0; s < k; s++ {
+			off := (s*b + i) * d
+			for j := 0; j < d; j++ {
+				setAt(t, off+j, rng.NormFloat64())
+			}
+		}
+	}
+}
+
+// forChunks runs fn over consecutive chunks of n records, each with a
+// program of the given kind and K.
+func (m *Model) forChunks(ctx context.Context, kind programKind, n, k int, fn func(p *program, first int, idx []int) error) error {
+	if ctx == nil {
+		ctx = context.Background()
+	}
+	for first := 0; first < n; {
+		if err := ctx.Err(); err != nil {
+			return err
+		}
+		b := inferBatch(n - first)
+		count := min(b, n-first)
+		p, err := m.acquire(programKey{kind: kind, batch: b, k: k})
+		if err != nil {
+			return err
+		}
+		idx := make([]int, count)
+		for i := range idx {
+			idx[i] = first + i
+		}
+		err = fn(p, first, idx)
+		m.release(p)
+		if err != nil {
+			return err
+		}
+		first += count
+	}
+	return nil
+}
+
+// Encode returns the posterior mean and standard deviation of every record,
+// each an (N, D) matrix.
+func (m *Model) Encode(ctx context.Context, data *dataset.Set) (mean, sigma *mat.Dense, err error) {
+	if err := m.checkData("Encode", data); err != nil {
+		return nil, nil, err
+	}
+	n, d := data.Len(), m.latent
+	if n == 0 {
+		return nil, nil, fmt.Errorf("vae.Encode: data: no records: %w", layers.ErrInvalidArgument)
+	}
+	mean, sigma = mat.NewDense(n, d, nil), mat.NewDense(n, d, nil)
+	err = m.forChunks(ctx, kindEncode, n, 1, func(p *program, first int, idx []int) error {
+		if err := m.fillInputs(p, data, idx); err != nil {
+			return err
+		}
+		if err := p.run(); err != nil {
+			return err
+		}
+		mu, lv := values(p.mu), values(p.logVar)
+		for i := range idx {
+			for j := 0; j < d; j++ {
+				mean.Set(first+i, j, mu[i*d+j])
+				sigma.Set(first+i, j, math.Exp(0.5*lv[i*d+j]))
+			}
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, nil, err
+	}
+	return mean, sigma, nil
+}
+
+// Decode maps latent rows z (N, D) to the likelihood's mean, (N, F): pixel
+// probabilities for Bernoulli, means for Gaussian. A conditional model needs
+// one label per row; an unconditional one takes nil.
+func (m *Model) Decode(ctx context.Context, z mat.Matrix, labels []int) (*mat.Dense, error) {
+	if z == nil {
+		return nil, fmt.Errorf("vae.Decode: z: nil: %w", layers.ErrInvalidArgument)
+	}
+	n, d := z.Dims()
+	if d != m.latent || n == 0 {
+		return nil, fmt.Errorf("vae.Decode: z: shape (%d, %d), want (N >= 1, %d): %w", n, d, m.latent, layers.ErrInvalidArgument)
+	}
+	if err := m.checkLabels("Decode", labels, n); err != nil {
+		return nil, err
+	}
+	out := mat.NewDense(n, m.width, nil)
+	err := m.forChunks(ctx, kindDecode, n, 1, func(p *program, first int, idx []int) error {
+		zero(p.z)
+		for i := range idx {
+			for j := 0; j < d; j++ {
+				v := z.At(first+i, j)
+				if math.IsNaN(v) || math.IsInf(v, 0) {
+					return fmt.Errorf("vae.Decode: z: row %d, column %d is %v: %w", first+i, j, v, layers.ErrInvalidArgument)
+				}
+				setAt(p.z, i*d+j, v)
+			}
+		}
+		if m.cfg.Classes > 0 {
+			batchLabels := make([]int, p.key.batch)
+			copy(batchLabels, labels[first:first+len(idx)])
+			m.fillLabels(p, batchLabels)
+		}
+		if err := p.run(); err != nil {
+			return err
+		}
+		copyRows(out, first, len(idx), values(p.mean))
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+func copyRows(dst *mat.Dense, first, count int, v []float64) {
+	_, w := dst.Dims()
+	for i := 0; i < count; i++ {
+		dst.SetRow(first+i, v[i*w:(i+1)*w])
+	}
+}
+
+// Reconstruct encodes every record to its posterior mean and decodes it,
+// returning the likelihood's mean (N, F). It is deterministic.
+func (m *Model) Reconstruct(ctx context.Context, data *dataset.Set) (*mat.Dense, error) {
+	if err := m.checkData("Reconstruct", data); err != nil {
+		return nil, err
+	}
+	n := data.Len()
+	if n == 0 {
+		return nil, fmt.Errorf("vae.Reconstruct: data: no records: %w", layers.ErrInvalidArgument)
+	}
+	out := mat.NewDense(n, m.width, nil)
+	err := m.forChunks(ctx, kindReconstruct, n, 1, func(p *program, first int, idx []int) error {
+		if err := m.fillInputs(p, data, idx); err != nil {
+			return err
+		}
+		if err := p.run(); err != nil {
+			return err
+		}
+		copyRows(out, first, len(idx), values(p.mean))
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+// SamplePrior draws n latent vectors from the prior, (n, D).
+func (m *Model) SamplePrior(n int, seed uint64) (*mat.Dense, error) {
+	if n < 1 {
+		return nil, fmt.Errorf("vae.SamplePrior: n: %d, want >= 1: %w", n, layers.ErrInvalidArgument)
+	}
+	t, err := m.cfg.Prior.Sample(rand.New(rand.NewPCG(seed, 0x9e3779b97f4a7c15)), n)
+	if err != nil {
+		return nil, fmt.Errorf("vae.SamplePrior: %w", err)
+	}
+	v := make([]float64, 0, n*m.latent)
+	switch d := t.Data().(type) {
+	case []float64:
+		v = append(v, d...)
+	case []float32:
+		for _, x := range d {
+			v = append(v, float64(x))
+		}
+	}
+	if len(v) != n*m.latent {
+		return nil, fmt.Errorf("vae.SamplePrior: prior returned %d values, want %d", len(v), n*m.latent)
+	}
+	return mat.NewDense(n, m.latent, v), nil
+}
+
+// Generate draws n latent vectors from the prior and decodes them. A
+// conditional model generates every row under the given labels (one per
+// row); an unconditional one takes nil.
+func (m *Model) Generate(ctx context.Context, n int, labels []int, seed uint64) (*mat.Dense, error) {
+	if err := m.checkLabels("Generate", labels, n); err != nil {
+		return nil, err
+	}
+	z, err := m.SamplePrior(n, seed)
+	if err != nil {
+		return nil, err
+	}
+	return m.Decode(ctx, z, labels)
+}
+
+// Interpolate decodes steps points on the straight line between the
+// posterior means of records i and j of data (both ends included). A
+// conditional model decodes every point under record i's label.
+func (m *Model) Interpolate(ctx context.Context, data *dataset.Set, i, j, steps int) (*mat.Dense, error) {
+	if err := m.checkData("Interpolate", data); err != nil {
+		return nil, err
+	}
+	if i < 0 || j < 0 || i >= data.Len() || j >= data.Len() {
+		return nil, fmt.Errorf("vae.Interpolate: records %d and %d: out of range 0..%d: %w", i, j, data.Len()-1, layers.ErrInvalidArgument)
+	}
+	if steps < 2 {
+		return nil, fmt.Errorf("vae.Interpolate: steps: %d, want >= 2: %w", steps, layers.ErrInvalidArgument)
+	}
+	pair, err := data.Subset([]int{i, j})
+	if err != nil {
+		return nil, err
+	}
+	mean, _, err := m.Encode(ctx, pair)
+	if err != nil {
+		return nil, err
+	}
+	z := mat.NewDense(steps, m.latent, nil)
+	for s := 0; s < steps; s++ {
+		t := float64(s) / float64(steps-1)
+		for d := 0; d < m.latent; d++ {
+			z.Set(s, d, (1-t)*mean.At(0, d)+t*mean.At(1, d))
+		}
+	}
+	var labels []int
+	if m.cfg.Classes > 0 {
+		labels = make([]int, steps)
+		for s := range labels {
+			labels[s] = data.Label(i)
+		}
+	}
+	return m.Decode(ctx, z, labels)
+}

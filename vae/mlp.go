@@ -1,0 +1,77 @@
+package vae
+
+import (
+	"slices"
+
+	"gorgonia.org/tensor"
+
+	"lowerbound.dev/layers"
+	"lowerbound.dev/losses"
+	"lowerbound.dev/priors"
+)
+
+// MLPConfig describes a fully connected VAE: an encoder MLP of widths
+// Input, Hidden..., a Gaussian head to Latent, and a decoder MLP of widths
+// Latent, Hidden reversed..., Input. Parameter names start with "encoder.",
+// "head." and "decoder.".
+type MLPConfig struct {
+	Input  int   // features per record, F
+	Hidden []int // hidden widths of the encoder; the decoder mirrors them
+	Latent int   // D
+	// Activation after every hidden layer; zero means ReLU.
+	Activation layers.Activation
+	// Likelihood; nil means losses.Bernoulli (decoder outputs logits).
+	Likelihood losses.Likelihood
+	// Prior; nil means the standard normal.
+	Prior priors.Prior
+	// Classes > 0 makes the model conditional (see Config.Classes).
+	Classes int
+	// Dtype; zero means Float32.
+	Dtype tensor.Dtype
+	// Seed of the weight initialisation.
+	Seed uint64
+}
+
+// NewMLP builds the model that MLPConfig describes. The standard MNIST
+// model is NewMLP(MLPConfig{Input: 784, Hidden: []int{400}, Latent: 20}).
+func NewMLP(cfg MLPConfig) (*Model, error) {
+	if cfg.Input < 1 {
+		return nil, configError("Input", "%d, want >= 1", cfg.Input)
+	}
+	if cfg.Latent < 1 {
+		return nil, configError("Latent", "%d, want >= 1", cfg.Latent)
+	}
+	if len(cfg.Hidden) == 0 {
+		return nil, configError("Hidden", "want at least one hidden layer")
+	}
+	if cfg.Classes < 0 {
+		return nil, configError("Classes", "%d is negative", cfg.Classes)
+	}
+	opt := layers.Options{Dtype: cfg.Dtype, Seed: cfg.Seed}
+	encSizes := append([]int{cfg.Input + cfg.Classes}, cfg.Hidden...)
+	enc, err := layers.NewMLP("encoder", layers.MLPConfig{Sizes: encSizes, Activation: cfg.Activation, Output: orReLU(cfg.Activation)}, opt)
+	if err != nil {
+		return nil, configError("Hidden", "%v", err)
+	}
+	head, err := layers.NewGaussianHead("head", cfg.Hidden[len(cfg.Hidden)-1], cfg.Latent, opt)
+	if err != nil {
+		return nil, configError("Latent", "%v", err)
+	}
+	decSizes := []int{cfg.Latent + cfg.Classes}
+	hidden := slices.Clone(cfg.Hidden)
+	slices.Reverse(hidden)
+	decSizes = append(append(decSizes, hidden...), cfg.Input)
+	dec, err := layers.NewMLP("decoder", layers.MLPConfig{Sizes: decSizes, Activation: cfg.Activation}, opt)
+	if err != nil {
+		return nil, configError("Hidden", "%v", err)
+	}
+	return New(Config{InputShape: []int{cfg.Input}, Encoder: enc, Head: head, Decoder: dec,
+		Likelihood: cfg.Likelihood, Prior: cfg.Prior, Classes: cfg.Classes, Dtype: cfg.Dtype})
+}
+
+func orReLU(a layers.Activation) layers.Activation {
+	if a == "" {
+		return layers.ReLU
+	}
+	return a
+}

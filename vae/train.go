@@ -1,0 +1,412 @@
+package vae
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"time"
+
+	G "gorgonia.org/gorgonia"
+	"gorgonia.org/tensor"
+
+	"lowerbound.dev/layers"
+	"lowerbound.dev/vae/dataset"
+	"lowerbound.dev/vae/schedule"
+)
+
+// ErrNonFinite is returned when a loss term becomes NaN or infinite. The
+// error names the step and the term; the parameters are left as they were
+// after the last good step and no checkpoint is written.
+var ErrNonFinite = errors.New("vae: non-finite value")
+
+// Optimizer selects the update rule.
+type Optimizer int
+
+const (
+	// Adam (Kingma and Ba 2015) with beta1 0.9, beta2 0.999, eps 1e-8.
+	Adam Optimizer = iota
+	// SGD is plain stochastic gradient descent, with optional momentum.
+	SGD
+)
+
+// TrainConfig configures Train. The zero value of each field is a sensible
+// default where one exists; Epochs is required.
+type TrainConfig struct {
+	Epochs    int       // passes over the data; required, >= 1
+	BatchSize int       // records per step; 0 means 100
+	Optimizer Optimizer // Adam (default) or SGD
+	LearnRate float64   // 0 means 1e-3
+	Momentum  float64   // SGD only
+	// Seed drives shuffling and the sampler's noise: the same seed, data
+	// and configuration give the same parameters bit for bit.
+	Seed uint64
+	// Beta weighs the KL term at each step; nil means schedule.Constant{1}
+	// (or 0 when Capacity is set).
+	Beta schedule.Beta
+	// FreeBits, when Lambda > 0, floors the batch-mean KL of every latent
+	// dimension at Lambda nats (Kingma et al. 2016). With a prior that has
+	// no closed-form KL the floor applies to the total KL instead.
+	FreeBits schedule.FreeBits
+	// Capacity, when Gamma > 0, adds Gamma*|KL - C(step)| (Burgess et al.
+	// 2018).
+	Capacity schedule.Capacity
+	// ClipNorm > 0 rescales the gradient of all parameters together when
+	// its L2 norm exceeds ClipNorm.
+	ClipNorm float64
+	// Validation data, evaluated (negative ELBO, one sample, fixed seed)
+	// after each epoch.
+	Validation *dataset.Set
+	// Patience > 0 stops training after that many epochs without a better
+	// validation negative ELBO. Needs Validation.
+	Patience int
+	// RestoreBest puts back the parameters of the epoch with the best
+	// validation negative ELBO when training ends. Needs Validation.
+	RestoreBest bool
+	// CheckpointPath, if set, is written atomically after every epoch that
+	// improves the validation negative ELBO (every epoch without
+	// Validation). A failed run leaves the last good file as it was.
+	CheckpointPath string
+	// OnStep, if set, is called after every optimiser step.
+	OnStep func(StepInfo)
+	// OnEpoch, if set, is called after every epoch; a non-nil error stops
+	// training and is returned.
+	OnEpoch func(EpochInfo) error
+}
+
+// StepInfo reports one optimiser step. Terms are batch means per record.
+type StepInfo struct {
+	Epoch, Step    int // Epoch counts from 1; Step from 0 across epochs
+	Loss           float64
+	Reconstruction float64 // -E_q[log p(x|z)]
+	KL             float64 // the KL before free bits or capacity
+	Beta           float64
+	SamplesPerSec  float64
+}
+
+// EpochInfo reports one epoch. Terms are means per record over the epoch.
+type EpochInfo struct {
+	Epoch          int
+	Steps          int
+	Loss           float64
+	Reconstruction float64
+	KL             float64
+	Beta           float64 // at the epoch's last step
+	// Validation is the validation negative ELBO, NaN without validation data.
+	Validation    float64
+	Best          bool // the best validation so far (always true without validation)
+	Duration      time.Duration
+	SamplesPerSec float64
+}
+
+func (c *TrainConfig) validate(m *Model, data *dataset.Set) error {
+	if c.Epochs < 1 {
+		return configError("Epochs", "%d, want >= 1", c.Epochs)
+	}
+	if c.BatchSize == 0 {
+		c.BatchSize = 100
+	}
+	if c.BatchSize < 1 {
+		return configError("BatchSize", "%d, want >= 1", c.BatchSize)
+	}
+	if c.LearnRate == 0 {
+		c.LearnRate = 1e-3
+	}
+	if !(c.LearnRate > 0) || math.IsInf(c.LearnRate, 0) {
+		return configError("LearnRate", "%v, want > 0", c.LearnRate)
+	}
+	if c.Optimizer != Adam && c.Optimizer != SGD {
+		return configError("Optimizer", "unknown value %d", c.Optimizer)
+	}
+	if c.Momentum < 0 || c.Momentum >= 1 {
+		return configError("Momentum", "%v, want 0 <= momentum < 1", c.Momentum)
+	}
+	if err := c.FreeBits.Validate(); err != nil {
+		return fmt.Errorf("%w: FreeBits: %v", ErrConfig, err)
+	}
+	if err := c.Capacity.Validate(); err != nil {
+		return fmt.Errorf("%w: Capacity: %v", ErrConfig, err)
+	}
+	if c.Beta == nil {
+		if c.Capacity.Gamma > 0 {
+			c.Beta = schedule.Constant{Value: 0}
+		} else {
+			c.Beta = schedule.Constant{Value: 1}
+		}
+	}
+	if v, ok := c.Beta.(interface{ Validate() error }); ok {
+		if err := v.Validate(); err != nil {
+			return fmt.Errorf("%w: Beta: %v", ErrConfig, err)
+		}
+	}
+	if c.ClipNorm < 0 {
+		return configError("ClipNorm", "%v, want >= 0", c.ClipNorm)
+	}
+	if (c.Patience > 0 || c.RestoreBest) && c.Validation == nil {
+		return configError("Validation", "Patience and RestoreBest need validation data")
+	}
+	if c.Patience < 0 {
+		return configError("Patience", "%d, want >= 0", c.Patience)
+	}
+	if err := m.checkData("Train", data); err != nil {
+		return err
+	}
+	if data.Len() == 0 {
+		return configError("data", "no records")
+	}
+	if c.Validation != nil {
+		if err := m.checkData("Train", c.Validation); err != nil {
+			return fmt.Errorf("validation: %w", err)
+		}
+	}
+	return nil
+}
+
+// Train fits the model to data. It builds one training graph and reuses it
+// for every step; a last batch smaller than BatchSize runs through the same
+// graph with its padding rows weighted zero. It stops early, returning the
+// history so far and the context's error, when ctx is done.
+func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) ([]EpochInfo, error) {
+	if ctx == nil {
+		ctx = context.Background()
+	}
+	if err := cfg.validate(m, data); err != nil {
+		return nil, err
+	}
+	key := programKey{kind: kindTrain, batch: cfg.BatchSize, k: 1, freeBits: cfg.FreeBits.Lambda > 0, capacity: cfg.Capacity.Gamma > 0}
+	m.mu.Lock()
+	p, err := m.build(key)
+	m.mu.Unlock()
+	if err != nil {
+		return nil, err
+	}
+	if p.lambda != nil {
+		if err := p.lambda.Memset(castTo(m.dtype, cfg.FreeBits.Lambda)); err != nil {
+			return nil, err
+		}
+	}
+	if p.lambdaTotal != nil {
+		if err := setScalar(p.lambdaTotal, cfg.FreeBits.Lambda*float64(m.latent)); err != nil {
+			return nil, err
+		}
+	}
+	if p.capGamma != nil {
+		if err := setScalar(p.capGamma, cfg.Capacity.Gamma); err != nil {
+			return nil, err
+		}
+	}
+	var solver G.Solver
+	switch cfg.Optimizer {
+	case SGD:
+		if cfg.Momentum > 0 {
+			solver = G.NewMomentum(G.WithLearnRate(cfg.LearnRate), G.WithMomentum(cfg.Momentum))
+		} else {
+			solver = G.NewVanillaSolver(G.WithLearnRate(cfg.LearnRate))
+		}
+	default:
+		solver = G.NewAdamSolver(G.WithLearnRate(cfg.LearnRate))
+	}
+	valueGrads := G.NodesToValueGrads(p.paramNodes)
+
+	rng := rand.New(rand.NewPCG(cfg.Seed, 0x5eed))
+	noise := rand.New(rand.NewPCG(cfg.Seed, 0x0153))
+	var history []EpochInfo
+	best := math.Inf(1)
+	var bestParams []*tensor.Dense
+	sinceBest := 0
+	step := 0
+	n := data.Len()
+	for epoch := 1; epoch <= cfg.Epochs; epoch++ {
+		start := time.Now()
+		batches, err := dataset.Batches(n, cfg.BatchSize, rng)
+		if err != nil {
+			return history, err
+		}
+		var sumLoss, sumRec, sumKL float64
+		var beta float64
+		for _, idx := range batches {
+			if err := ctx.Err(); err != nil {
+				return history, err
+			}
+			t0 := time.Now()
+			if err := m.fillInputs(p, data, idx); err != nil {
+				return history, err
+			}
+			if err := layers.FillNormal(noise, p.eps); err != nil {
+				return history, err
+			}
+			zero(p.mask)
+			for i := range idx {
+				setAt(p.mask, i, 1)
+			}
+			beta = cfg.Beta.At(step)
+			if err := setScalar(p.invCount, 1/float64(len(idx))); err != nil {
+				return history, err
+			}
+			if err := setScalar(p.beta, beta); err != nil {
+				return history, err
+			}
+			if p.capTarget != nil {
+				if err := setScalar(p.capTarget, cfg.Capacity.Target(step)); err != nil {
+					return history, err
+				}
+			}
+			if err := p.run(); err != nil {
+				return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
+			}
+			loss, rec, kl := scalarValue(p.loss), -scalarValue(p.recon), scalarValue(p.klAvg)
+			for _, term := range []struct {
+				name string
+				v    float64
+			}{{"reconstruction", rec}, {"KL", kl}, {"loss", loss}} {
+				if math.IsNaN(term.v) || math.IsInf(term.v, 0) {
+					return history, fmt.Errorf("vae.Train: epoch %d, step %d: the %s term is %v: %w", epoch, step, term.name, term.v, ErrNonFinite)
+				}
+			}
+			if cfg.ClipNorm > 0 {
+				if err := clipGradients(p.paramNodes, cfg.ClipNorm); err != nil {
+					return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
+				}
+			}
+			if err := solver.Step(valueGrads); err != nil {
+				return history, fmt.Errorf("vae.Train: step %d: optimiser: %w", step, err)
+			}
+			c := float64(len(idx))
+			sumLoss += loss * c
+			sumRec += rec * c
+			sumKL += kl * c
+			if cfg.OnStep != nil {
+				cfg.OnStep(StepInfo{Epoch: epoch, Step: step, Loss: loss, Reconstruction: rec, KL: kl, Beta: beta,
+					SamplesPerSec: c / time.Since(t0).Seconds()})
+			}
+			step++
+		}
+		dur := time.Since(start)
+		info := EpochInfo{Epoch: epoch, Steps: len(batches), Loss: sumLoss / float64(n), Reconstruction: sumRec / float64(n),
+			KL: sumKL / float64(n), Beta: beta, Validation: math.NaN(), Duration: dur, SamplesPerSec: float64(n) / dur.Seconds()}
+		improved := true
+		if cfg.Validation != nil {
+			rep, err := m.Evaluate(ctx, cfg.Validation, EvalOptions{K: 1, Seed: cfg.Seed})
+			if err != nil {
+				return history, fmt.Errorf("vae.Train: epoch %d: validation: %w", epoch, err)
+			}
+			info.Validation = rep.NegELBO
+			improved = rep.NegELBO < best
+		}
+		info.Best = improved
+		if improved {
+			best = info.Validation
+			sinceBest = 0
+			if cfg.RestoreBest {
+				bestParams = m.snapshot()
+			}
+			if cfg.CheckpointPath != "" {
+				if err := m.Save(cfg.CheckpointPath); err != nil {
+					return history, fmt.Errorf("vae.Train: epoch %d: %w", epoch, err)
+				}
+			}
+		} else {
+			sinceBest++
+		}
+		history = append(history, info)
+		if cfg.OnEpoch != nil {
+			if err := cfg.OnEpoch(info); err != nil {
+				return history, err
+			}
+		}
+		if cfg.Patience > 0 && sinceBest >= cfg.Patience {
+			break
+		}
+	}
+	if cfg.RestoreBest && bestParams != nil {
+		m.restore(bestParams)
+	}
+	return history, nil
+}
+
+func castTo(dt tensor.Dtype, v float64) any {
+	if dt == tensor.Float32 {
+		return float32(v)
+	}
+	return v
+}
+
+// clipGradients rescales all gradients together so that their joint L2 norm
+// is at most maxNorm.
+func clipGradients(nodes []*G.Node, maxNorm float64) error {
+	var sq float64
+	grads := make([]*tensor.Dense, 0, len(nodes))
+	for _, n := range nodes {
+		g, err := n.Grad()
+		if err != nil {
+			return err
+		}
+		d, ok := g.(*tensor.Dense)
+		if !ok {
+			return fmt.Errorf("gradient of %s is %T", n.Name(), g)
+		}
+		grads = append(grads, d)
+		for _, v := range denseFloats(d) {
+			sq += v * v
+		}
+	}
+	norm := math.Sqrt(sq)
+	if norm <= maxNorm || norm == 0 {
+		return nil
+	}
+	scale := maxNorm / norm
+	for _, d := range grads {
+		switch x := d.Data().(type) {
+		case []float64:
+			for i := range x {
+				x[i] *= scale
+			}
+		case []float32:
+			for i := range x {
+				x[i] *= float32(scale)
+			}
+		}
+	}
+	return nil
+}
+
+func denseFloats(d *tensor.Dense) []float64 {
+	switch x := d.Data().(type) {
+	case []float64:
+		return x
+	case []float32:
+		out := make([]float64, len(x))
+		for i, v := range x {
+			out[i] = float64(v)
+		}
+		return out
+	}
+	return nil
+}
+
+// snapshot copies every parameter's values.
+func (m *Model) snapshot() []*tensor.Dense {
+	out := make([]*tensor.Dense, len(m.params))
+	for i, p := range m.params {
+		out[i] = p.Value.Clone().(*tensor.Dense)
+	}
+	return out
+}
+
+// restore copies a snapshot back into the parameters, in place, so every
+// compiled graph sees it.
+func (m *Model) restore(s []*tensor.Dense) {
+	for i, p := range m.params {
+		copyInto(p.Value, s[i])
+	}
+}
+
+func copyInto(dst, src *tensor.Dense) {
+	switch d := dst.Data().(type) {
+	case []float64:
+		copy(d, src.Data().([]float64))
+	case []float32:
+		copy(d, src.Data().([]float32))
+	}
+}
