@@ -16,6 +16,7 @@ import (
 	"os"
 	"os/signal"
 	"runtime"
+	"runtime/pprof"
 	"time"
 
 	"gorgonia.org/tensor"
@@ -46,8 +47,22 @@ func main() {
 	limit := flag.Int("limit", 0, "use only the first N training and test records (0: all)")
 	jsonPath := flag.String("json", "", "write a JSON summary to this file")
 	savePath := flag.String("save", "", "write the trained model's checkpoint to this file")
+	cpuProfile := flag.String("cpuprofile", "", "write a CPU profile of the whole run to this file")
 	flag.Parse()
+	if *cpuProfile != "" {
+		f, err := os.Create(*cpuProfile)
+		if err != nil {
+			fmt.Fprintln(os.Stderr, "mnistbench:", err)
+			os.Exit(1)
+		}
+		if err := pprof.StartCPUProfile(f); err != nil {
+			fmt.Fprintln(os.Stderr, "mnistbench:", err)
+			os.Exit(1)
+		}
+		defer pprof.StopCPUProfile()
+	}
 	if err := run(*epochs, *seed, *threads, *k, *dtype, *limit, *jsonPath, *savePath); err != nil {
+		pprof.StopCPUProfile()
 		fmt.Fprintln(os.Stderr, "mnistbench:", err)
 		os.Exit(1)
 	}
