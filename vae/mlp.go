@@ -22,8 +22,11 @@ type MLPConfig struct {
 	Activation layers.Activation
 	// Likelihood; nil means losses.Bernoulli (decoder outputs logits).
 	Likelihood losses.Likelihood
-	// Prior; nil means the standard normal.
+	// Prior; nil means MakePrior's result, or the standard normal.
 	Prior priors.Prior
+	// MakePrior, when set and Prior is nil, builds the prior from the
+	// model's encoder and head (as a VampPrior needs).
+	MakePrior func(encoder layers.Layer, head *layers.GaussianHead) (priors.Prior, error)
 	// Classes > 0 makes the model conditional (see Config.Classes).
 	Classes int
 	// Dtype; zero means Float32.
@@ -65,8 +68,14 @@ func NewMLP(cfg MLPConfig) (*Model, error) {
 	if err != nil {
 		return nil, configError("Hidden", "%v", err)
 	}
+	prior := cfg.Prior
+	if prior == nil && cfg.MakePrior != nil {
+		if prior, err = cfg.MakePrior(enc, head); err != nil {
+			return nil, configError("MakePrior", "%v", err)
+		}
+	}
 	return New(Config{InputShape: []int{cfg.Input}, Encoder: enc, Head: head, Decoder: dec,
-		Likelihood: cfg.Likelihood, Prior: cfg.Prior, Classes: cfg.Classes, Dtype: cfg.Dtype})
+		Likelihood: cfg.Likelihood, Prior: prior, Classes: cfg.Classes, Dtype: cfg.Dtype})
 }
 
 func orReLU(a layers.Activation) layers.Activation {

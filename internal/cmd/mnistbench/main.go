@@ -22,6 +22,8 @@ import (
 	"gorgonia.org/tensor"
 
 	"lowerbound.dev/internal/mnist"
+	"lowerbound.dev/layers"
+	"lowerbound.dev/priors"
 	"lowerbound.dev/vae"
 )
 
@@ -30,6 +32,7 @@ type summary struct {
 	Seed        uint64    `json:"seed"`
 	Threads     int       `json:"threads"`
 	Dtype       string    `json:"dtype"`
+	Prior       string    `json:"prior"`
 	K           int       `json:"k"`
 	EpochSecs   []float64 `json:"epoch_seconds"`
 	TrainNegELB []float64 `json:"train_neg_elbo"`
@@ -47,6 +50,8 @@ func main() {
 	limit := flag.Int("limit", 0, "use only the first N training and test records (0: all)")
 	jsonPath := flag.String("json", "", "write a JSON summary to this file")
 	savePath := flag.String("save", "", "write the trained model's checkpoint to this file")
+	prior := flag.String("prior", "standard", "prior over z: standard, mixture or vamp")
+	components := flag.Int("components", 50, "components of the mixture or pseudo-inputs of the VampPrior")
 	cpuProfile := flag.String("cpuprofile", "", "write a CPU profile of the whole run to this file")
 	flag.Parse()
 	if *cpuProfile != "" {
@@ -61,14 +66,14 @@ func main() {
 		}
 		defer pprof.StopCPUProfile()
 	}
-	if err := run(*epochs, *seed, *threads, *k, *dtype, *limit, *jsonPath, *savePath); err != nil {
+	if err := run(*epochs, *seed, *threads, *k, *dtype, *limit, *prior, *components, *jsonPath, *savePath); err != nil {
 		pprof.StopCPUProfile()
 		fmt.Fprintln(os.Stderr, "mnistbench:", err)
 		os.Exit(1)
 	}
 }
 
-func run(epochs int, seed uint64, threads, k int, dtypeName string, limit int, jsonPath, savePath string) error {
+func run(epochs int, seed uint64, threads, k int, dtypeName string, limit int, priorName string, components int, jsonPath, savePath string) error {
 	if threads < 1 {
 		return fmt.Errorf("-threads %d: want >= 1", threads)
 	}
@@ -88,11 +93,25 @@ func run(epochs int, seed uint64, threads, k int, dtypeName string, limit int, j
 	if err != nil {
 		return err
 	}
-	m, err := vae.NewMLP(vae.MLPConfig{Input: 784, Hidden: []int{400}, Latent: 20, Dtype: dt, Seed: seed})
+	cfg := vae.MLPConfig{Input: 784, Hidden: []int{400}, Latent: 20, Dtype: dt, Seed: seed}
+	switch priorName {
+	case "standard":
+	case "mixture":
+		cfg.MakePrior = func(layers.Layer, *layers.GaussianHead) (priors.Prior, error) {
+			return priors.NewMixture("prior", components, 20, priors.MixtureOptions{Dtype: dt, Seed: seed})
+		}
+	case "vamp":
+		cfg.MakePrior = func(enc layers.Layer, head *layers.GaussianHead) (priors.Prior, error) {
+			return priors.NewVamp("prior", components, []int{784}, enc, head, priors.VampOptions{Dtype: dt, Seed: seed})
+		}
+	default:
+		return fmt.Errorf("-prior %q: want standard, mixture or vamp", priorName)
+	}
+	m, err := vae.NewMLP(cfg)
 	if err != nil {
 		return err
 	}
-	sum := summary{Epochs: epochs, Seed: seed, Threads: threads, Dtype: dtypeName, K: k}
+	sum := summary{Epochs: epochs, Seed: seed, Threads: threads, Dtype: dtypeName, K: k, Prior: priorName}
 	_, err = m.Train(ctx, train, vae.TrainConfig{
 		Epochs: epochs, BatchSize: 100, LearnRate: 1e-3, Seed: seed,
 		OnEpoch: func(e vae.EpochInfo) error {
