@@ -58,16 +58,18 @@ func Reparameterize(mu, logVar, eps *G.Node) (*G.Node, error) {
 		return G.Add(mu, scaled)
 	}
 	// Broadcast over the K samples: view mu and sigma as one row of N*D
-	// values and eps as K rows of N*D, then fold back to (K*N, D).
-	muRow, err := G.Reshape(mu, tensor.Shape{1, n * d})
+	// values and eps as K rows of N*D, then fold back to (K*N, D). reshape
+	// (not G.Reshape) copies leaf nodes first: a G.Reshape view of the eps
+	// input would otherwise be overwritten in place by the backward pass.
+	muRow, err := reshape(mu, tensor.Shape{1, n * d})
 	if err != nil {
 		return nil, fmt.Errorf("%s: %w", where, err)
 	}
-	sigmaRow, err := G.Reshape(sigma, tensor.Shape{1, n * d})
+	sigmaRow, err := reshape(sigma, tensor.Shape{1, n * d})
 	if err != nil {
 		return nil, fmt.Errorf("%s: %w", where, err)
 	}
-	epsRows, err := G.Reshape(eps, tensor.Shape{k, n * d})
+	epsRows, err := reshape(eps, tensor.Shape{k, n * d})
 	if err != nil {
 		return nil, fmt.Errorf("%s: %w", where, err)
 	}

@@ -1,0 +1,153 @@
+package layers
+
+import (
+	"bytes"
+	"encoding/json"
+	"errors"
+	"fmt"
+)
+
+// ErrUnknownKind is wrapped by FromSpec when a Spec's Kind names no built-in
+// layer.
+var ErrUnknownKind = errors.New("unknown layer kind")
+
+// The Kind of each built-in layer's Spec.
+const (
+	kindDense        = "dense"
+	kindMLP          = "mlp"
+	kindConv2D       = "conv2d"
+	kindUpsample     = "upsample"
+	kindFlatten      = "flatten"
+	kindReshape      = "reshape"
+	kindActivation   = "activation"
+	kindSequential   = "sequential"
+	kindGaussianHead = "gaussian_head"
+)
+
+// FromSpec rebuilds a built-in layer from its Spec: Dense, MLP, Conv2D,
+// Upsample, Flatten, Reshape, Activation, or a Sequential of these (nested to
+// any depth). The result has the same parameter names and shapes as the
+// layer that wrote the Spec, with fresh values initialised by opt; the
+// caller then overwrites them from a checkpoint. opt.Dtype chooses the
+// dtype, which a Spec does not record.
+//
+// A Kind that names no built-in layer gives an error wrapping
+// ErrUnknownKind; a malformed or invalid config gives one wrapping
+// ErrInvalidArgument.
+func FromSpec(spec Spec, opt Options) (Layer, error) {
+	return fromSpec("layers.FromSpec", spec, opt)
+}
+
+func fromSpec(where string, spec Spec, opt Options) (Layer, error) {
+	switch spec.Kind {
+	case kindDense:
+		var c denseConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return nil, err
+		}
+		return NewDense(c.Name, c.In, c.Out, opt)
+	case kindMLP:
+		var c mlpConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return nil, err
+		}
+		return NewMLP(c.Name, c.MLPConfig, opt)
+	case kindConv2D:
+		var c conv2DConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return nil, err
+		}
+		return NewConv2D(c.Name, c.Conv2DConfig, opt)
+	case kindUpsample:
+		var c upsampleConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return nil, err
+		}
+		return NewUpsample(c.Name, c.Factor)
+	case kindFlatten:
+		var c flattenConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return nil, err
+		}
+		return NewFlatten(c.Name), nil
+	case kindReshape:
+		var c reshapeConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return nil, err
+		}
+		return NewReshape(c.Name, c.Shape...)
+	case kindActivation:
+		var c activationConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return nil, err
+		}
+		if err := c.Activation.check(where, "spec.Config.activation"); err != nil {
+			return nil, err
+		}
+		return c.Activation, nil
+	case kindSequential:
+		var c sequentialConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return nil, err
+		}
+		ls := make([]Layer, len(c.Layers))
+		for i, sub := range c.Layers {
+			l, err := fromSpec(where, sub, opt)
+			if err != nil {
+				return nil, fmt.Errorf("%s: sequential %q layer %d: %w", where, c.Name, i, err)
+			}
+			ls[i] = l
+		}
+		return NewSequential(c.Name, ls...)
+	case kindGaussianHead:
+		return nil, fmt.Errorf("%s: spec.Kind: %q is a head, not a Layer; use NewGaussianHeadFromSpec: %w", where, spec.Kind, ErrUnknownKind)
+	}
+	return nil, fmt.Errorf("%s: spec.Kind: %q: %w", where, spec.Kind, ErrUnknownKind)
+}
+
+// NewGaussianHeadFromSpec rebuilds a GaussianHead from the Spec it wrote,
+// with the same parameter names and shapes. A Kind other than
+// "gaussian_head" gives an error wrapping ErrUnknownKind.
+func NewGaussianHeadFromSpec(spec Spec, opt Options) (*GaussianHead, error) {
+	const where = "layers.NewGaussianHeadFromSpec"
+	if spec.Kind != kindGaussianHead {
+		return nil, fmt.Errorf("%s: spec.Kind: %q, want %q: %w", where, spec.Kind, kindGaussianHead, ErrUnknownKind)
+	}
+	var c headConfig
+	if err := decodeConfig(where, spec, &c); err != nil {
+		return nil, err
+	}
+	return NewGaussianHead(c.Name, c.In, c.Latent, opt)
+}
+
+// decodeConfig strictly decodes spec.Config into v: unknown fields are an
+// error, so a misspelt key does not silently become a zero value.
+func decodeConfig(where string, spec Spec, v any) error {
+	dec := json.NewDecoder(bytes.NewReader(spec.Config))
+	dec.DisallowUnknownFields()
+	if err := dec.Decode(v); err != nil {
+		return argError(where, "spec.Config", "kind %q: %v", spec.Kind, err)
+	}
+	return nil
+}
+
+// Every built-in layer is a Layer and a Describer.
+var (
+	_ Layer     = (*Dense)(nil)
+	_ Layer     = (*MLP)(nil)
+	_ Layer     = (*Conv2D)(nil)
+	_ Layer     = (*Upsample)(nil)
+	_ Layer     = (*Flatten)(nil)
+	_ Layer     = (*Reshape)(nil)
+	_ Layer     = (*Sequential)(nil)
+	_ Layer     = Activation("")
+	_ Describer = (*Dense)(nil)
+	_ Describer = (*MLP)(nil)
+	_ Describer = (*Conv2D)(nil)
+	_ Describer = (*Upsample)(nil)
+	_ Describer = (*Flatten)(nil)
+	_ Describer = (*Reshape)(nil)
+	_ Describer = (*Sequential)(nil)
+	_ Describer = Activation("")
+	_ Describer = (*GaussianHead)(nil)
+)
