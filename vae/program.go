@@ -110,6 +110,7 @@ func oneOf(dt tensor.Dtype) any {
 // build compiles a program. It is called with m.mu held or before the model
 // is shared.
 func (m *Model) build(key programKey) (*program, error) {
+	m.builds[key.kind].Add(1)
 	g := G.NewGraph()
 	p := &program{key: key, g: g, scope: layers.NewScope(g)}
 	b, k, d, f, c := key.batch, key.k, m.latent, m.width, m.cfg.Classes
@@ -171,7 +172,14 @@ func (m *Model) build(key programKey) (*program, error) {
 	encIn := xN
 	if len(m.cfg.InputShape) == 3 {
 		shape := append(tensor.Shape{b}, m.cfg.InputShape...)
-		if encIn, err = G.Reshape(xN, shape); err != nil {
+		// Reshape an input through a copy: gorgonia's Reshape of an input
+		// node shares the input's memory, and a later in-place operation
+		// would write into it.
+		xCopy, err := G.Add(xN, m.scalar(0))
+		if err != nil {
+			return nil, wrap("image input", err)
+		}
+		if encIn, err = G.Reshape(xCopy, shape); err != nil {
 			return nil, wrap("image input", err)
 		}
 	}
