@@ -1,3 +1,61 @@
 // Package vae composes layers, a likelihood and a prior into a variational
 // autoencoder, and trains, evaluates, checkpoints and serves it.
+//
+// # Building a model
+//
+// NewMLP builds a fully connected model from a few numbers; New assembles
+// one from parts: an encoder (any layers.Layer producing (N, H) features),
+// a layers.GaussianHead, a decoder, a losses.Likelihood (Bernoulli by
+// default; Gaussian with fixed or learned sigma) and a priors.Prior (the
+// standard normal by default; any Prior, including your own). Config
+// explains each field. Records arrive flat, F values each; image models set
+// InputShape to {C, H, W} and receive (N, C, H, W) batches in the encoder.
+//
+// # Conditional models
+//
+// Config.Classes > 0 makes a conditional VAE (Sohn, Lee and Yan 2015) on
+// a class label: the one-hot label is concatenated to the encoder input
+// (as constant label planes for image inputs) and to z before the decoder.
+// Data then carries labels (dataset.Set.WithLabels) and Decode, Generate
+// take one label per row.
+//
+// # Training
+//
+// Train runs minibatch training with Adam or SGD. It builds one gorgonia
+// graph for the configured batch size and reuses it for every step: the
+// inputs are tensors the trainer refills, and a ragged last batch is padded
+// and masked. The objective per record is
+//
+//	-E_q[log p(x|z)] + beta(step) * KL(q(z|x) || p(z))
+//
+// estimated with one reparameterised sample. The KL is the prior's closed
+// form when it offers one (priors.ClosedFormKL) and otherwise the Monte
+// Carlo estimate log q(z|x) - log p(z) at the same sample: unbiased, but
+// noisier, and negative for some records. Free bits (Kingma et al. 2016)
+// floor each dimension's batch-mean KL; the KL capacity objective (Burgess
+// et al. 2018) adds gamma*|KL - C(step)|; schedules for beta live in
+// vae/schedule. Training takes a context, reports every step and epoch
+// through callbacks, can validate, stop early and restore the best
+// parameters, and stops with ErrNonFinite, naming the step and the term,
+// as soon as a loss term is NaN or infinite, before the bad step touches
+// the parameters.
+//
+// Same seed, data and configuration give the same parameters bit for bit.
+//
+// # Evaluation and inference
+//
+// Evaluate reports the negative ELBO with its reconstruction and KL parts,
+// the KL per latent dimension, the active units (Burda, Grosse and
+// Salakhutdinov 2016) and, with K >= 2 samples, the importance-weighted
+// estimate of -log p(x). Encode, Decode, Reconstruct, Generate,
+// Interpolate and Score (a per-record anomaly score) run on pooled
+// inference graphs and are safe for concurrent use; their noise depends
+// only on the seed given and the record's position, so concurrent and
+// serial calls return identical results.
+//
+// # Checkpoints
+//
+// Save writes a safetensors file atomically; Load rebuilds the model from
+// the description in its metadata. The file layout and tensor names are
+// documented on Save and in checkpoint.go.
 package vae

@@ -80,7 +80,7 @@ func (m *Model) Evaluate(ctx context.Context, data *dataset.Set, opt EvalOptions
 		if err := p.run(); err != nil {
 			return err
 		}
-		ll, kl, mu := values(p.logLik), values(p.kl), values(p.mu)
+		ll, kl, mu := p.values(p.logLik), p.values(p.kl), p.values(p.mu)
 		for i := range idx {
 			sumRec -= ll[i]
 			sumKL += kl[i]
@@ -90,7 +90,7 @@ func (m *Model) Evaluate(ctx context.Context, data *dataset.Set, opt EvalOptions
 			if klDim == nil {
 				klDim = make([]float64, d)
 			}
-			kd := values(p.klDim)
+			kd := p.values(p.klDim)
 			for i := range idx {
 				for j := 0; j < d; j++ {
 					klDim[j] += kd[i*d+j]
@@ -98,7 +98,7 @@ func (m *Model) Evaluate(ctx context.Context, data *dataset.Set, opt EvalOptions
 			}
 		}
 		if p.iw != nil {
-			iw := values(p.iw)
+			iw := p.values(p.iw)
 			for i := range idx {
 				sumIW -= iw[i]
 			}
@@ -192,13 +192,13 @@ func (m *Model) Score(ctx context.Context, data *dataset.Set, opt ScoreOptions) 
 			return err
 		}
 		if k >= 2 {
-			iw := values(p.iw)
+			iw := p.values(p.iw)
 			for i := range idx {
 				out[first+i] = -iw[i]
 			}
 			return nil
 		}
-		ll, kl := values(p.logLik), values(p.kl)
+		ll, kl := p.values(p.logLik), p.values(p.kl)
 		for i := range idx {
 			out[first+i] = kl[i] - ll[i]
 		}

@@ -188,7 +188,9 @@ func (m *Model) forChunks(ctx context.Context, kind programKind, n, k int, fn fu
 		for i := range idx {
 			idx[i] = first + i
 		}
+		m.engine.RLock()
 		err = fn(p, first, idx)
+		m.engine.RUnlock()
 		m.release(p)
 		if err != nil {
 			return err
@@ -216,7 +218,7 @@ func (m *Model) Encode(ctx context.Context, data *dataset.Set) (mean, sigma *mat
 		if err := p.run(); err != nil {
 			return err
 		}
-		mu, lv := values(p.mu), values(p.logVar)
+		mu, lv := p.values(p.mu), p.values(p.logVar)
 		for i := range idx {
 			for j := 0; j < d; j++ {
 				mean.Set(first+i, j, mu[i*d+j])
@@ -265,7 +267,7 @@ func (m *Model) Decode(ctx context.Context, z mat.Matrix, labels []int) (*mat.De
 		if err := p.run(); err != nil {
 			return err
 		}
-		copyRows(out, first, len(idx), values(p.mean))
+		copyRows(out, first, len(idx), p.values(p.mean))
 		return nil
 	})
 	if err != nil {
@@ -299,7 +301,7 @@ func (m *Model) Reconstruct(ctx context.Context, data *dataset.Set) (*mat.Dense,
 		if err := p.run(); err != nil {
 			return err
 		}
-		copyRows(out, first, len(idx), values(p.mean))
+		copyRows(out, first, len(idx), p.values(p.mean))
 		return nil
 	})
 	if err != nil {

@@ -53,6 +53,11 @@ type program struct {
 	loss, recon, klAvg    *G.Node // training: batch averages
 	klDimAvg              *G.Node // training: (1, D) masked batch average per dimension
 	paramNodes            []*G.Node
+
+	// reads holds copies of the output nodes' values, taken by gorgonia
+	// Read statements as each is computed: after a run, the memory of an
+	// intermediate node may already hold a later operation's result.
+	reads map[*G.Node]*G.Value
 }
 
 func (m *Model) newInput(g *G.ExprGraph, name string, shape ...int) (*G.Node, *tensor.Dense) {
@@ -360,7 +365,24 @@ func (m *Model) build(key programKey) (*program, error) {
 			// Without a per-dimension KL the floor applies to the total.
 			p.lambdaTotal = m.newScalar(g, "free_bits")
 			lambdaN = p.lambdaTotal
-			if klTerm, err = G.MaxBetween(p.klAvg, lambdaN); err != nil {
+			// Gorgonia's MaxBetween fails at run time on scalars (and
+			// its gradient on reshaped ones), so max(kl, lambda) is
+			// written as (kl + lambda + |kl - lambda|) / 2.
+			sum, err := G.Add(p.klAvg, lambdaN)
+			var gap *G.Node
+			if err == nil {
+				gap, err = G.Sub(p.klAvg, lambdaN)
+			}
+			if err == nil {
+				gap, err = G.Abs(gap)
+			}
+			if err == nil {
+				klTerm, err = G.Add(sum, gap)
+			}
+			if err == nil {
+				klTerm, err = G.Mul(klTerm, m.scalar(0.5))
+			}
+			if err != nil {
 				return nil, wrap("free bits", err)
 			}
 		}
@@ -415,6 +437,15 @@ func meanOverSamples(v *G.Node, k, b int) (*G.Node, error) {
 }
 
 func (m *Model) compile(p *program, dual []*G.Node) error {
+	p.reads = map[*G.Node]*G.Value{}
+	for _, n := range []*G.Node{p.mu, p.logVar, p.mean, p.logLik, p.kl, p.klDim, p.iw, p.loss, p.recon, p.klAvg} {
+		if n == nil || p.reads[n] != nil {
+			continue
+		}
+		slot := new(G.Value)
+		G.Read(n, slot)
+		p.reads[n] = slot
+	}
 	opts := []G.VMOpt{}
 	if len(dual) > 0 {
 		opts = append(opts, G.BindDualValues(dual...))
@@ -435,9 +466,14 @@ func (p *program) run() (err error) {
 	return p.vm.RunAll()
 }
 
-// values returns a node's value as float64s (a copy).
-func values(n *G.Node) []float64 {
-	switch d := n.Value().Data().(type) {
+// values returns the value an output node had when it was computed, as
+// float64s (a copy).
+func (p *program) values(n *G.Node) []float64 {
+	slot := p.reads[n]
+	if slot == nil || *slot == nil {
+		return nil
+	}
+	switch d := (*slot).Data().(type) {
 	case []float64:
 		return append([]float64(nil), d...)
 	case []float32:
@@ -454,8 +490,8 @@ func values(n *G.Node) []float64 {
 	return nil
 }
 
-func scalarValue(n *G.Node) float64 {
-	v := values(n)
+func (p *program) scalarValue(n *G.Node) float64 {
+	v := p.values(n)
 	if len(v) == 0 {
 		return math.NaN()
 	}

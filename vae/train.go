@@ -255,7 +255,7 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 			if err := p.run(); err != nil {
 				return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
 			}
-			loss, rec, kl := scalarValue(p.loss), -scalarValue(p.recon), scalarValue(p.klAvg)
+			loss, rec, kl := p.scalarValue(p.loss), -p.scalarValue(p.recon), p.scalarValue(p.klAvg)
 			for _, term := range []struct {
 				name string
 				v    float64
