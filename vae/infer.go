@@ -18,9 +18,21 @@ import (
 // model keeps at most a handful of compiled graphs per kind.
 const maxInferBatch = 128
 
-func inferBatch(n int) int {
+// maxSampleRows bounds K times the batch of an importance-sampling program,
+// so that memory stays bounded for large K (the decoder output alone is
+// K*batch*F values).
+const maxSampleRows = 16384
+
+// inferBatch returns the batch size of the program for the next n records
+// with K samples each: a power of two, at most maxInferBatch and, for K > 1,
+// at most maxSampleRows/K (but at least 1).
+func inferBatch(n, k int) int {
+	limit := maxInferBatch
+	for limit > 1 && limit*k > maxSampleRows {
+		limit /= 2
+	}
 	b := 1
-	for b < n && b < maxInferBatch {
+	for b < n && b < limit {
 		b *= 2
 	}
 	return b
@@ -106,15 +118,26 @@ func (m *Model) fillLabels(p *program, labels []int) {
 		zero(p.planes)
 		hw := m.cfg.InputShape[1] * m.cfg.InputShape[2]
 		for i, l := range labels {
-			start := (i*c + l) * hw
-			for j := 0; j < hw; j++ {
-				setAt(p.planes, start+j, 1)
-			}
+			fillRange(p.planes, (i*c+l)*hw, (i*c+l+1)*hw, 1)
 		}
 	}
 }
 
 func zero(t *tensor.Dense) { t.Zero() }
+
+// fillRange sets elements [from, to) of t to v.
+func fillRange(t *tensor.Dense, from, to int, v float64) {
+	switch d := t.Data().(type) {
+	case []float64:
+		for i := from; i < to; i++ {
+			d[i] = v
+		}
+	case []float32:
+		for i := from; i < to; i++ {
+			d[i] = float32(v)
+		}
+	}
+}
 
 func setAt(t *tensor.Dense, i int, v float64) {
 	switch d := t.Data().(type) {
@@ -157,12 +180,19 @@ func repeatBlock(dst, src *tensor.Dense, k int) {
 // identical between serial and concurrent calls.
 func fillNoise(t *tensor.Dense, seed uint64, first, count, b, k, d int) {
 	zero(t)
+	f32, _ := t.Data().([]float32)
+	f64, _ := t.Data().([]float64)
 	for i := 0; i < count; i++ {
 		rng := rand.New(rand.NewPCG(seed, uint64(first+i)))
 		for s := 0; s < k; s++ {
 			off := (s*b + i) * d
 			for j := 0; j < d; j++ {
-				setAt(t, off+j, rng.NormFloat64())
+				v := rng.NormFloat64()
+				if f32 != nil {
+					f32[off+j] = float32(v)
+				} else {
+					f64[off+j] = v
+				}
 			}
 		}
 	}
@@ -178,7 +208,7 @@ func (m *Model) forChunks(ctx context.Context, kind programKind, n, k int, fn fu
 		if err := ctx.Err(); err != nil {
 			return err
 		}
-		b := inferBatch(n - first)
+		b := inferBatch(n-first, k)
 		count := min(b, n-first)
 		p, err := m.acquire(programKey{kind: kind, batch: b, k: k})
 		if err != nil {

@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"sync"
+	"sync/atomic"
 
 	"gorgonia.org/tensor"
 
@@ -71,6 +72,13 @@ type Model struct {
 
 	mu    sync.Mutex
 	pools map[programKey][]*program
+	// builds counts the programs compiled, per kind (read by tests).
+	builds [kindReconstruct + 1]atomic.Int64
+	// engine is held for writing while acquire compiles a program and
+	// for reading while a program runs: gorgonia's NewTapeMachine writes
+	// the engine field of every tensor bound to the graph, the shared
+	// parameter tensors included, which races with programs reading them.
+	engine sync.RWMutex
 
 	extra map[string]string
 }

@@ -14,6 +14,8 @@ func (m *Model) acquire(key programKey) (*program, error) {
 		m.pools[key] = free[:len(free)-1]
 		return p, nil
 	}
+	m.engine.Lock()
+	defer m.engine.Unlock()
 	return m.build(key)
 }
 

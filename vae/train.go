@@ -47,7 +47,8 @@ type TrainConfig struct {
 	Beta schedule.Beta
 	// FreeBits, when Lambda > 0, floors the batch-mean KL of every latent
 	// dimension at Lambda nats (Kingma et al. 2016). With a prior that has
-	// no closed-form KL the floor applies to the total KL instead.
+	// no closed-form KL the divergence does not split by dimension, and the
+	// batch-mean total KL is floored at Lambda*D instead.
 	FreeBits schedule.FreeBits
 	// Capacity, when Gamma > 0, adds Gamma*|KL - C(step)| (Burgess et al.
 	// 2018).
