@@ -1,7 +1,8 @@
 // Command telemetry flags unusual pump-station telemetry with a variational
 // autoencoder trained on normal operation.
 //
-// The data is invented for this demo: fleet.go simulates a fleet of
+// The data is invented for this demo: package
+// lowerbound.dev/examples/internal/fleet simulates a fleet of
 // pumping stations of three types (booster, district, transfer), each
 // reading twelve sensors every ten minutes (flow, suction and discharge
 // pressure, drive-end and non-drive-end bearing temperature, motor winding

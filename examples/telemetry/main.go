@@ -10,6 +10,8 @@ import (
 	"os/signal"
 	"strconv"
 	"strings"
+
+	"lowerbound.dev/examples/internal/fleet"
 )
 
 func main() {
@@ -125,13 +127,13 @@ func printReport(w io.Writer, cfg Config, res Result) {
 	for _, ev := range res.Events {
 		what := ev.Fault.String()
 		if ev.Sensor >= 0 {
-			what += " (" + SensorNames()[ev.Sensor] + ")"
+			what += " (" + fleet.SensorNames()[ev.Sensor] + ")"
 		}
 		first := "never"
 		if ev.FirstFlag >= 0 {
 			first = ev.FirstFlag.String()
 		}
-		fmt.Fprintf(w, "%-8d %-9s %-26s %8d %8d %s\n", ev.Station, StationTypes()[ev.StationType].Name, what, ev.Records, ev.Flagged, first)
+		fmt.Fprintf(w, "%-8d %-9s %-26s %8d %8d %s\n", ev.Station, fleet.StationTypes()[ev.StationType].Name, what, ev.Records, ev.Flagged, first)
 	}
 	fmt.Fprintf(w, "\ncheckpoint round trip: largest score difference %g\n", res.ReloadMaxDiff)
 	fmt.Fprintf(w, "wrote %s, %s, %s, %s in %.1fs\n", res.ScoresPNG, res.ROCPNG, res.Checkpoint, res.ScoresCSV, res.Duration.Seconds())

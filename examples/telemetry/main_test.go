@@ -13,6 +13,8 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"lowerbound.dev/examples/internal/fleet"
 )
 
 func tinyConfig(t *testing.T) Config {
@@ -92,11 +94,11 @@ func TestRunSmoke(t *testing.T) {
 	if sc.threshold != res.Threshold {
 		t.Errorf("checkpoint threshold %v, run used %v", sc.threshold, res.Threshold)
 	}
-	fleet, err := GenerateFleet(FleetConfig{Stations: cfg.Stations, HistoryDays: cfg.HistoryDays, TestDays: cfg.TestDays, Interval: cfg.Interval, Seed: cfg.Seed})
+	fl, err := fleet.GenerateFleet(fleet.FleetConfig{Stations: cfg.Stations, HistoryDays: cfg.HistoryDays, TestDays: cfg.TestDays, Interval: cfg.Interval, Seed: cfg.Seed})
 	if err != nil {
 		t.Fatal(err)
 	}
-	raw, err := toSet(fleet.Test)
+	raw, err := fleet.ToSet(fl.Test)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -112,24 +114,24 @@ func TestRunSmoke(t *testing.T) {
 		if math.Abs(v-scores[i]) > 5e-5 {
 			t.Fatalf("row %d: CSV score %v, reloaded model %v", i+2, v, scores[i])
 		}
-		if row[3] != fleet.Test[i].Fault.String() {
-			t.Fatalf("row %d: fault %q, want %q", i+2, row[3], fleet.Test[i].Fault)
+		if row[3] != fl.Test[i].Fault.String() {
+			t.Fatalf("row %d: fault %q, want %q", i+2, row[3], fl.Test[i].Fault)
 		}
 		if flagged := strconv.FormatBool(scores[i] > sc.threshold); row[5] != flagged {
 			t.Fatalf("row %d: flagged %q, want %q", i+2, row[5], flagged)
 		}
 	}
 
-	if len(res.Events) != len(fleet.Events) {
-		t.Errorf("%d event results for %d events", len(res.Events), len(fleet.Events))
+	if len(res.Events) != len(fl.Events) {
+		t.Errorf("%d event results for %d events", len(res.Events), len(fl.Events))
 	}
 	for _, ev := range res.Events {
 		if ev.Records == 0 || ev.Flagged > ev.Records || (ev.Flagged == 0) != (ev.FirstFlag < 0) {
 			t.Errorf("event result %+v is inconsistent", ev)
 		}
 	}
-	if len(res.PerFault) != len(Faults()) {
-		t.Fatalf("%d per-fault metrics, want %d", len(res.PerFault), len(Faults()))
+	if len(res.PerFault) != len(fleet.Faults()) {
+		t.Fatalf("%d per-fault metrics, want %d", len(res.PerFault), len(fleet.Faults()))
 	}
 	for _, fm := range append(res.PerFault, res.Overall) {
 		if fm.Records == 0 {

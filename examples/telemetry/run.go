@@ -17,6 +17,8 @@ import (
 
 	"gorgonia.org/tensor"
 
+	"lowerbound.dev/examples/internal/detect"
+	"lowerbound.dev/examples/internal/fleet"
 	"lowerbound.dev/examples/internal/plots"
 	"lowerbound.dev/examples/internal/progress"
 	"lowerbound.dev/losses"
@@ -85,13 +87,13 @@ func DefaultConfig() Config {
 type FaultMetrics struct {
 	Name    string
 	Records int
-	Detection
+	detect.Detection
 	AUC float64
 }
 
 // EventResult is the detection of one injected fault.
 type EventResult struct {
-	FaultEvent
+	fleet.FaultEvent
 	Records, Flagged int
 	// FirstFlag is the time from the event's first faulty record to its
 	// first flagged record, or -1 when none was flagged.
@@ -103,7 +105,7 @@ type Result struct {
 	TrainRecords, ValRecords, TestRecords, NormalTestRecords int
 	History                                                  []vae.EpochInfo
 	Threshold                                                float64
-	// PerFault holds one entry per fault type in the order of Faults();
+	// PerFault holds one entry per fault type in the order of fleet.Faults();
 	// Overall pools every faulty record.
 	PerFault []FaultMetrics
 	Overall  FaultMetrics
@@ -169,43 +171,43 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	var res Result
 
 	// 1. Invented data.
-	fleet, err := GenerateFleet(FleetConfig{Stations: cfg.Stations, HistoryDays: cfg.HistoryDays, TestDays: cfg.TestDays,
+	fl, err := fleet.GenerateFleet(fleet.FleetConfig{Stations: cfg.Stations, HistoryDays: cfg.HistoryDays, TestDays: cfg.TestDays,
 		Interval: cfg.Interval, Seed: cfg.Seed})
 	if err != nil {
 		return res, err
 	}
-	valFrom := fleetStart().AddDate(0, 0, cfg.HistoryDays-cfg.ValDays)
-	var trainRecs, valRecs []Record
-	for _, r := range fleet.History {
+	valFrom := fleet.Start().AddDate(0, 0, cfg.HistoryDays-cfg.ValDays)
+	var trainRecs, valRecs []fleet.Record
+	for _, r := range fl.History {
 		if r.Time.Before(valFrom) {
 			trainRecs = append(trainRecs, r)
 		} else {
 			valRecs = append(valRecs, r)
 		}
 	}
-	trainRaw, err := toSet(trainRecs)
+	trainRaw, err := fleet.ToSet(trainRecs)
 	if err != nil {
 		return res, err
 	}
-	valRaw, err := toSet(valRecs)
+	valRaw, err := fleet.ToSet(valRecs)
 	if err != nil {
 		return res, err
 	}
-	testRaw, err := toSet(fleet.Test)
+	testRaw, err := fleet.ToSet(fl.Test)
 	if err != nil {
 		return res, err
 	}
 	res.TrainRecords, res.ValRecords, res.TestRecords = trainRaw.Len(), valRaw.Len(), testRaw.Len()
 	fmt.Fprintf(log, "fleet: %d stations (%s), %d sensors every %v; train %d records (%d days), validation %d (%d days), test %d (%d days) with %d injected faults\n",
-		cfg.Stations, typeSummary(fleet.Stations), NumSensors, cfg.Interval, res.TrainRecords, cfg.HistoryDays-cfg.ValDays,
-		res.ValRecords, cfg.ValDays, res.TestRecords, cfg.TestDays, len(fleet.Events))
+		cfg.Stations, typeSummary(fl.Stations), fleet.NumSensors, cfg.Interval, res.TrainRecords, cfg.HistoryDays-cfg.ValDays,
+		res.ValRecords, cfg.ValDays, res.TestRecords, cfg.TestDays, len(fl.Events))
 
-	for _, ev := range fleet.Events {
+	for _, ev := range fl.Events {
 		what := ev.Fault.String()
 		if ev.Sensor >= 0 {
-			what += " (" + SensorNames()[ev.Sensor] + ")"
+			what += " (" + fleet.SensorNames()[ev.Sensor] + ")"
 		}
-		fmt.Fprintf(log, "  injected: station %2d (%s) %s from %s to %s\n", ev.Station, StationTypes()[fleet.Stations[ev.Station].Type].Name,
+		fmt.Fprintf(log, "  injected: station %2d (%s) %s from %s to %s\n", ev.Station, fleet.StationTypes()[fl.Stations[ev.Station].Type].Name,
 			what, ev.Start.Format("Jan 2 15:04"), ev.End.Format("Jan 2 15:04"))
 	}
 
@@ -226,11 +228,11 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	// 3. Model: a VAE conditioned on the station type, Gaussian likelihood.
 	var lik losses.Likelihood = losses.Gaussian{Sigma: cfg.Sigma}
 	if cfg.Sigma == 0 {
-		if lik, err = losses.NewLearnedGaussian("likelihood", NumSensors, tensor.Float32); err != nil {
+		if lik, err = losses.NewLearnedGaussian("likelihood", fleet.NumSensors, tensor.Float32); err != nil {
 			return res, err
 		}
 	}
-	m, err := vae.NewMLP(vae.MLPConfig{Input: NumSensors, Hidden: cfg.Hidden, Latent: cfg.Latent, Classes: len(StationTypes()),
+	m, err := vae.NewMLP(vae.MLPConfig{Input: fleet.NumSensors, Hidden: cfg.Hidden, Latent: cfg.Latent, Classes: len(fleet.StationTypes()),
 		Likelihood: lik, Seed: cfg.Seed})
 	if err != nil {
 		return res, err
@@ -260,7 +262,7 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	if err != nil {
 		return res, err
 	}
-	if res.Threshold, err = Quantile(valScores, cfg.Quantile); err != nil {
+	if res.Threshold, err = detect.Quantile(valScores, cfg.Quantile); err != nil {
 		return res, err
 	}
 
@@ -270,9 +272,9 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	if err != nil {
 		return res, err
 	}
-	names, _ := json.Marshal(SensorNames())
+	names, _ := json.Marshal(fleet.SensorNames())
 	var typeNames []string
-	for _, t := range StationTypes() {
+	for _, t := range fleet.StationTypes() {
 		typeNames = append(typeNames, t.Name)
 	}
 	types, _ := json.Marshal(typeNames)
@@ -314,14 +316,14 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	}
 
 	// 7. Metrics.
-	byFault := make([][]float64, numFaults)
-	for i, r := range fleet.Test {
+	byFault := make([][]float64, fleet.NumFaults)
+	for i, r := range fl.Test {
 		byFault[r.Fault] = append(byFault[r.Fault], scores[i])
 	}
-	normal := byFault[Normal]
+	normal := byFault[fleet.Normal]
 	res.NormalTestRecords = len(normal)
 	var all []float64
-	for _, f := range Faults() {
+	for _, f := range fleet.Faults() {
 		fm, err := metricsFor(f.String(), byFault[f], normal, res.Threshold)
 		if err != nil {
 			return res, err
@@ -333,10 +335,10 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		return res, err
 	}
 	res.NormalFlagRate = res.Overall.FalsePositiveRate()
-	for _, ev := range fleet.Events {
+	for _, ev := range fl.Events {
 		er := EventResult{FaultEvent: ev, FirstFlag: -1}
 		var onset time.Time
-		for i, r := range fleet.Test {
+		for i, r := range fl.Test {
 			if r.Station != ev.Station || r.Fault != ev.Fault {
 				continue
 			}
@@ -356,7 +358,7 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 
 	// 8. Files.
 	res.ScoresCSV = filepath.Join(cfg.Out, "scores.csv")
-	if err := writeScores(res.ScoresCSV, fleet, scores, res.Threshold); err != nil {
+	if err := writeScores(res.ScoresCSV, fl, scores, res.Threshold); err != nil {
 		return res, err
 	}
 	res.ScoresPNG = filepath.Join(cfg.Out, "scores.png")
@@ -372,9 +374,9 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 }
 
 func metricsFor(name string, pos, neg []float64, threshold float64) (FaultMetrics, error) {
-	fm := FaultMetrics{Name: name, Records: len(pos), Detection: Detect(pos, neg, threshold), AUC: math.NaN()}
+	fm := FaultMetrics{Name: name, Records: len(pos), Detection: detect.Detect(pos, neg, threshold), AUC: math.NaN()}
 	if len(pos) > 0 && len(neg) > 0 {
-		auc, err := AUC(pos, neg)
+		auc, err := detect.AUC(pos, neg)
 		if err != nil {
 			return fm, fmt.Errorf("%s: %w", name, err)
 		}
@@ -383,28 +385,13 @@ func metricsFor(name string, pos, neg []float64, threshold float64) (FaultMetric
 	return fm, nil
 }
 
-// toSet turns records into a Set labelled by station type.
-func toSet(recs []Record) (*dataset.Set, error) {
-	x := make([]float64, 0, len(recs)*NumSensors)
-	labels := make([]int, len(recs))
-	for i, r := range recs {
-		x = append(x, r.Values[:]...)
-		labels[i] = r.Type
-	}
-	s, err := dataset.New(x, len(recs), NumSensors)
-	if err != nil {
-		return nil, err
-	}
-	return s.WithLabels(labels, len(StationTypes()))
-}
-
-func typeSummary(st []Station) string {
-	counts := make([]int, len(StationTypes()))
+func typeSummary(st []fleet.Station) string {
+	counts := make([]int, len(fleet.StationTypes()))
 	for _, s := range st {
 		counts[s.Type]++
 	}
 	out := ""
-	for i, t := range StationTypes() {
+	for i, t := range fleet.StationTypes() {
 		if i > 0 {
 			out += ", "
 		}
@@ -453,7 +440,7 @@ func (s *scorer) score(ctx context.Context, raw *dataset.Set, k int, seed uint64
 	return s.model.Score(ctx, x, vae.ScoreOptions{K: k, Seed: seed})
 }
 
-func writeScores(path string, fleet *Fleet, scores []float64, threshold float64) (err error) {
+func writeScores(path string, fl *fleet.Fleet, scores []float64, threshold float64) (err error) {
 	f, err := os.Create(path)
 	if err != nil {
 		return err
@@ -464,9 +451,9 @@ func writeScores(path string, fleet *Fleet, scores []float64, threshold float64)
 		}
 	}()
 	w := csv.NewWriter(f)
-	types := StationTypes()
+	types := fleet.StationTypes()
 	_ = w.Write([]string{"station", "station_type", "time", "fault", "score", "flagged"})
-	for i, r := range fleet.Test {
+	for i, r := range fl.Test {
 		_ = w.Write([]string{strconv.Itoa(r.Station), types[r.Type].Name, r.Time.Format(time.RFC3339), r.Fault.String(),
 			strconv.FormatFloat(scores[i], 'f', 4, 64), strconv.FormatBool(scores[i] > threshold)})
 	}
@@ -475,13 +462,13 @@ func writeScores(path string, fleet *Fleet, scores []float64, threshold float64)
 }
 
 // faultColor gives each label the same colour in every plot.
-func faultColor(f Fault) color.Color {
+func faultColor(f fleet.Fault) color.Color {
 	switch f {
-	case BearingWear:
+	case fleet.BearingWear:
 		return color.RGBA{R: 214, G: 39, B: 40, A: 255}
-	case Cavitation:
+	case fleet.Cavitation:
 		return color.RGBA{R: 31, G: 119, B: 180, A: 255}
-	case StuckSensor:
+	case fleet.StuckSensor:
 		return color.RGBA{R: 255, G: 127, B: 14, A: 255}
 	}
 	return color.RGBA{R: 90, G: 90, B: 90, A: 255}
@@ -498,8 +485,8 @@ func plotScores(path string, byFault [][]float64, threshold, q float64) error {
 		}
 		return out
 	}
-	groups := []plots.Group{{Name: "normal (test period)", Values: rel(byFault[Normal]), Color: faultColor(Normal)}}
-	for _, f := range Faults() {
+	groups := []plots.Group{{Name: "normal (test period)", Values: rel(byFault[fleet.Normal]), Color: faultColor(fleet.Normal)}}
+	for _, f := range fleet.Faults() {
 		groups = append(groups, plots.Group{Name: f.String(), Values: rel(byFault[f]), Color: faultColor(f)})
 	}
 	all := slices.Concat(byFault...)
@@ -516,11 +503,11 @@ func plotScores(path string, byFault [][]float64, threshold, q float64) error {
 
 func plotROC(path string, byFault [][]float64, res Result) error {
 	var curves []plots.Curve
-	for i, f := range Faults() {
-		if len(byFault[f]) == 0 || len(byFault[Normal]) == 0 {
+	for i, f := range fleet.Faults() {
+		if len(byFault[f]) == 0 || len(byFault[fleet.Normal]) == 0 {
 			continue
 		}
-		fpr, tpr := ROCCurve(byFault[f], byFault[Normal])
+		fpr, tpr := detect.ROCCurve(byFault[f], byFault[fleet.Normal])
 		curves = append(curves, plots.Curve{Name: fmt.Sprintf("%s (AUC %.3f)", f, res.PerFault[i].AUC), X: fpr, Y: tpr, Color: faultColor(f)})
 	}
 	if len(curves) == 0 {

@@ -1,9 +1,9 @@
-package main
+package fleet
 
 // This file generates the demo data. The data is invented: there is no real
 // fleet, site or sensor behind it. The pumping stations, their sensors, the
 // demand curve and the faults are a plausible-looking simulation written for
-// this example, so that the pipeline has something realistic in shape to
+// the example programs, so that they have something realistic in shape to
 // work on. Do not read engineering conclusions into its numbers.
 
 import (
@@ -49,7 +49,7 @@ const (
 	BearingWear       // vibration and bearing temperature drift up slowly
 	Cavitation        // suction pressure and flow dip, vibration bursts
 	StuckSensor       // one sensor repeats a constant value
-	numFaults
+	NumFaults         // number of labels, Normal included
 )
 
 // Faults returns the fault types (every label except Normal).
@@ -142,8 +142,10 @@ type Fleet struct {
 	Events          []FaultEvent
 }
 
-// fleetStart is the (invented) time of the first record, a Monday.
-func fleetStart() time.Time { return time.Date(2025, time.March, 3, 0, 0, 0, 0, time.UTC) }
+// Start returns the (invented) time of the first record of every station,
+// Monday 3 March 2025, 00:00 UTC. The history begins here and the test
+// period follows it.
+func Start() time.Time { return time.Date(2025, time.March, 3, 0, 0, 0, 0, time.UTC) }
 
 // GenerateFleet simulates the fleet. The data is invented for this demo
 // (no real station or sensor is behind it). The same configuration always
@@ -264,7 +266,7 @@ func simulate(st Station, ty StationType, weather []float64, interval time.Durat
 	magA := 0.3 * ratedLoadA
 	ratedA := math.Hypot(magA, ratedLoadA)
 
-	start := fleetStart()
+	start := Start()
 	out := make([]Record, n)
 	var tDE, tNDE, tW float64
 	for i := range n {

@@ -1,0 +1,31 @@
+package fleet
+
+import (
+	"fmt"
+
+	"lowerbound.dev/vae/dataset"
+)
+
+// ToSet turns records into a dataset.Set of len(recs) rows and NumSensors
+// features (Record.Values in sensor order, raw units), labelled by station
+// type (Record.Type) with len(StationTypes()) classes, ready to be
+// standardised and fed to a conditional model. The fault labels are not
+// carried over; read them from the records. A non-finite reading or a
+// station type out of range is an error.
+func ToSet(recs []Record) (*dataset.Set, error) {
+	x := make([]float64, 0, len(recs)*NumSensors)
+	labels := make([]int, len(recs))
+	for i, r := range recs {
+		x = append(x, r.Values[:]...)
+		labels[i] = r.Type
+	}
+	s, err := dataset.New(x, len(recs), NumSensors)
+	if err != nil {
+		return nil, fmt.Errorf("ToSet: %w", err)
+	}
+	s, err = s.WithLabels(labels, len(StationTypes()))
+	if err != nil {
+		return nil, fmt.Errorf("ToSet: %w", err)
+	}
+	return s, nil
+}

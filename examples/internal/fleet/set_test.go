@@ -1,0 +1,52 @@
+package fleet
+
+import (
+	"errors"
+	"math"
+	"testing"
+)
+
+// TestToSet checks that every row of the set is the record's readings in
+// sensor order and every label its station type, by comparing with the
+// records one value at a time.
+func TestToSet(t *testing.T) {
+	f := smallFleet(t, 2)
+	s, err := ToSet(f.Test)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if s.Len() != len(f.Test) || s.Features() != NumSensors || s.Classes() != len(StationTypes()) {
+		t.Fatalf("set of %d x %d with %d classes, want %d x %d with %d", s.Len(), s.Features(), s.Classes(),
+			len(f.Test), NumSensors, len(StationTypes()))
+	}
+	for i, r := range f.Test {
+		row := s.Row(i)
+		for j := range NumSensors {
+			if row[j] != r.Values[j] {
+				t.Fatalf("record %d, %s: set %v, record %v", i, SensorNames()[j], row[j], r.Values[j])
+			}
+		}
+		if s.Label(i) != r.Type {
+			t.Fatalf("record %d: label %d, station type %d", i, s.Label(i), r.Type)
+		}
+	}
+}
+
+func TestToSetErrors(t *testing.T) {
+	f := smallFleet(t, 2)
+	bad := append([]Record(nil), f.Test[:3]...)
+	bad[1].Values[Power] = math.NaN()
+	if _, err := ToSet(bad); err == nil {
+		t.Error("NaN reading: want an error")
+	}
+	bad = append([]Record(nil), f.Test[:3]...)
+	bad[2].Type = len(StationTypes())
+	if _, err := ToSet(bad); err == nil {
+		t.Error("station type out of range: want an error")
+	}
+	// The error of the Set underneath is wrapped, not replaced.
+	bad[2].Type = -1
+	if _, err := ToSet(bad); err == nil || errors.Unwrap(err) == nil {
+		t.Errorf("negative station type: err = %v, want a wrapped error", err)
+	}
+}
