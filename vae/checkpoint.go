@@ -194,6 +194,8 @@ func Load(path string) (*Model, error) {
 
 // LoadWeights reads the parameters of a checkpoint into m, which must have
 // been built with the same parts (same parameter names, shapes and dtype).
+// It is safe to call while inference runs (it waits for running calls); it
+// must not run at the same time as Train.
 // It checks everything before it changes anything: on error m is as it was.
 // Extra metadata in the file replaces m's.
 func (m *Model) LoadWeights(path string) error {
@@ -251,6 +253,9 @@ func (m *Model) setWeights(f *safetensors.File, path string) error {
 			return bad("tensor %q is not a parameter of this model", name)
 		}
 	}
+	// Writing the parameters excludes running inference programs.
+	m.engine.Lock()
+	defer m.engine.Unlock()
 	for i, p := range m.params {
 		switch d := p.Value.Data().(type) {
 		case []float32:

@@ -345,7 +345,12 @@ func (m *Model) SamplePrior(n int, seed uint64) (*mat.Dense, error) {
 	if n < 1 {
 		return nil, fmt.Errorf("vae.SamplePrior: n: %d, want >= 1: %w", n, layers.ErrInvalidArgument)
 	}
+	// A prior may compile a graph of its own over the model's parameters
+	// to sample (the VampPrior runs the encoder); compiling writes to the
+	// shared tensors, so it excludes running programs like acquire does.
+	m.engine.Lock()
 	t, err := m.cfg.Prior.Sample(rand.New(rand.NewPCG(seed, 0x9e3779b97f4a7c15)), n)
+	m.engine.Unlock()
 	if err != nil {
 		return nil, fmt.Errorf("vae.SamplePrior: %w", err)
 	}
@@ -368,6 +373,9 @@ func (m *Model) SamplePrior(n int, seed uint64) (*mat.Dense, error) {
 // conditional model generates every row under the given labels (one per
 // row); an unconditional one takes nil.
 func (m *Model) Generate(ctx context.Context, n int, labels []int, seed uint64) (*mat.Dense, error) {
+	if n < 1 {
+		return nil, fmt.Errorf("vae.Generate: n: %d, want >= 1: %w", n, layers.ErrInvalidArgument)
+	}
 	if err := m.checkLabels("Generate", labels, n); err != nil {
 		return nil, err
 	}

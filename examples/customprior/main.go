@@ -62,7 +62,7 @@ type config struct {
 }
 
 func defaultConfig() config {
-	return config{Out: filepath.Join("out", "customprior"), Seed: 1, Epochs: 12, Stations: 6,
+	return config{Out: filepath.Join("out", "customprior"), Seed: 1, Epochs: 30, Stations: 6,
 		HistoryDays: 21, ValDays: 4, TestDays: 7, K: 16, Latent: 4}
 }
 
