@@ -6,6 +6,10 @@
 // test images. It is a benchmark, not an example.
 //
 //	go run ./internal/cmd/mnistbench -epochs 5 -threads 1
+//
+// Built with -tags openblas (cgo and Debian's libopenblas-dev) the graphs
+// run on OpenBLAS instead of gonum's pure Go BLAS; set OPENBLAS_NUM_THREADS
+// to match -threads when comparing.
 package main
 
 import (
@@ -33,6 +37,7 @@ type summary struct {
 	Threads     int       `json:"threads"`
 	Dtype       string    `json:"dtype"`
 	Prior       string    `json:"prior"`
+	BLAS        string    `json:"blas"`
 	K           int       `json:"k"`
 	EpochSecs   []float64 `json:"epoch_seconds"`
 	TrainNegELB []float64 `json:"train_neg_elbo"`
@@ -111,7 +116,8 @@ func run(epochs int, seed uint64, threads, k int, dtypeName string, limit int, p
 	if err != nil {
 		return err
 	}
-	sum := summary{Epochs: epochs, Seed: seed, Threads: threads, Dtype: dtypeName, K: k, Prior: priorName}
+	fmt.Printf("lowerbound mnistbench: %s, %d thread(s), %s, prior %s, BLAS %s\n", dtypeName, threads, "784-400-20", priorName, vae.BLAS)
+	sum := summary{Epochs: epochs, Seed: seed, Threads: threads, Dtype: dtypeName, K: k, Prior: priorName, BLAS: vae.BLAS}
 	_, err = m.Train(ctx, train, vae.TrainConfig{
 		Epochs: epochs, BatchSize: 100, LearnRate: 1e-3, Seed: seed,
 		OnEpoch: func(e vae.EpochInfo) error {
