@@ -188,14 +188,7 @@ func makeData(cfg config) (*data, error) {
 		return nil, err
 	}
 	valFrom := fleet.Start().AddDate(0, 0, cfg.HistoryDays-cfg.ValDays)
-	var trainRecs, valRecs []fleet.Record
-	for _, r := range f.History {
-		if r.Time.Before(valFrom) {
-			trainRecs = append(trainRecs, r)
-		} else {
-			valRecs = append(valRecs, r)
-		}
-	}
+	trainRecs, valRecs := fleet.SplitAt(f.History, valFrom)
 	d := &data{}
 	trainRaw, err := fleet.ToSet(trainRecs)
 	if err != nil {

@@ -177,14 +177,7 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		return res, err
 	}
 	valFrom := fleet.Start().AddDate(0, 0, cfg.HistoryDays-cfg.ValDays)
-	var trainRecs, valRecs []fleet.Record
-	for _, r := range fl.History {
-		if r.Time.Before(valFrom) {
-			trainRecs = append(trainRecs, r)
-		} else {
-			valRecs = append(valRecs, r)
-		}
-	}
+	trainRecs, valRecs := fleet.SplitAt(fl.History, valFrom)
 	trainRaw, err := fleet.ToSet(trainRecs)
 	if err != nil {
 		return res, err

@@ -2,6 +2,7 @@ package fleet
 
 import (
 	"fmt"
+	"time"
 
 	"lowerbound.dev/vae/dataset"
 )
@@ -28,4 +29,17 @@ func ToSet(recs []Record) (*dataset.Set, error) {
 		return nil, fmt.Errorf("ToSet: %w", err)
 	}
 	return s, nil
+}
+
+// SplitAt splits records by time: those before t, and those at or after t,
+// each in their original order.
+func SplitAt(recs []Record, t time.Time) (before, after []Record) {
+	for _, r := range recs {
+		if r.Time.Before(t) {
+			before = append(before, r)
+		} else {
+			after = append(after, r)
+		}
+	}
+	return before, after
 }

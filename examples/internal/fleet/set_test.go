@@ -4,6 +4,7 @@ import (
 	"errors"
 	"math"
 	"testing"
+	"time"
 )
 
 // TestToSet checks that every row of the set is the record's readings in
@@ -48,5 +49,17 @@ func TestToSetErrors(t *testing.T) {
 	bad[2].Type = -1
 	if _, err := ToSet(bad); err == nil || errors.Unwrap(err) == nil {
 		t.Errorf("negative station type: err = %v, want a wrapped error", err)
+	}
+}
+
+func TestSplitAt(t *testing.T) {
+	t0 := Start()
+	recs := []Record{{Time: t0}, {Time: t0.Add(2 * time.Hour)}, {Time: t0.Add(time.Hour)}, {Time: t0.Add(3 * time.Hour)}}
+	before, after := SplitAt(recs, t0.Add(2*time.Hour))
+	if len(before) != 2 || !before[0].Time.Equal(t0) || !before[1].Time.Equal(t0.Add(time.Hour)) {
+		t.Errorf("before: %v", before)
+	}
+	if len(after) != 2 || !after[0].Time.Equal(t0.Add(2*time.Hour)) || !after[1].Time.Equal(t0.Add(3*time.Hour)) {
+		t.Errorf("after (the split time itself belongs here): %v", after)
 	}
 }
