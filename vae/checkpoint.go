@@ -15,25 +15,6 @@ import (
 	"lowerbound.dev/priors"
 )
 
-// Checkpoints are safetensors files (an open format: an 8-byte little-endian
-// header length, a JSON header, then the raw little-endian tensors). Each
-// parameter is one tensor named by its Param.Name, for example
-// "encoder.0.weight" (shape (in, out), applied as x @ W + b),
-// "encoder.0.bias" (shape (1, out)), "head.mean.weight",
-// "head.logvar.weight", "decoder.1.weight", "prior.means"; F32 for float32
-// models and F64 for float64 ones. Any program that reads safetensors can
-// read the weights.
-//
-// The header's "__metadata__" holds, as strings:
-//
-//	lowerbound.format   "1"
-//	lowerbound.model    JSON: input shape, classes, dtype and the specs of
-//	                    encoder, head, decoder, likelihood and prior
-//	anything set with Model.SetExtra, under its own key
-//
-// Load rebuilds the model from lowerbound.model alone, so it needs no code
-// beyond the SDK when every part is a built-in one.
-
 // ErrCheckpoint is wrapped by every error about a checkpoint's content.
 var ErrCheckpoint = errors.New("vae: bad checkpoint")
 
@@ -79,6 +60,25 @@ func (m *Model) spec() (modelSpec, error) {
 // Save writes the model to path atomically: it writes a temporary file in
 // the same folder and renames it over path, so a failure at any point
 // leaves the previous file at path intact.
+//
+// Checkpoints are safetensors files (an open format: an 8-byte little-endian
+// header length, a JSON header, then the raw little-endian tensors). Each
+// parameter is one tensor named by its Param.Name, for example
+// "encoder.0.weight" (shape (in, out), applied as x @ W + b),
+// "encoder.0.bias" (shape (1, out)), "head.mean.weight",
+// "head.logvar.weight", "decoder.1.weight", "prior.means"; F32 for float32
+// models and F64 for float64 ones. Any program that reads safetensors can
+// read the weights.
+//
+// The header's "__metadata__" holds, as strings:
+//
+//	lowerbound.format   "1"
+//	lowerbound.model    JSON: input shape, classes, dtype and the specs of
+//	                    encoder, head, decoder, likelihood and prior
+//	anything set with Model.SetExtra, under its own key
+//
+// Load rebuilds the model from lowerbound.model alone, so it needs no code
+// beyond the SDK when every part is a built-in one.
 //
 // A model with a user-written part (a layer without layers.Describer, or a
 // likelihood or prior that is not built in) is saved with its weights and

@@ -57,5 +57,5 @@
 //
 // Save writes a safetensors file atomically; Load rebuilds the model from
 // the description in its metadata. The file layout and tensor names are
-// documented on Save and in checkpoint.go.
+// documented on Save.
 package vae
