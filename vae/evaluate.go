@@ -177,6 +177,9 @@ func (m *Model) Score(ctx context.Context, data *dataset.Set, opt ScoreOptions) 
 	if err := m.checkData("Score", data); err != nil {
 		return nil, err
 	}
+	if opt.K < 0 {
+		return nil, fmt.Errorf("vae.Score: K: %d, want >= 0: %w", opt.K, layers.ErrInvalidArgument)
+	}
 	k := max(opt.K, 1)
 	n := data.Len()
 	if n == 0 {

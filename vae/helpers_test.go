@@ -130,6 +130,21 @@ func flatParams(m *Model) []float64 {
 	return out
 }
 
+// denseFloats returns a tensor's values as float64s.
+func denseFloats(d *tensor.Dense) []float64 {
+	switch x := d.Data().(type) {
+	case []float64:
+		return x
+	case []float32:
+		out := make([]float64, len(x))
+		for i, v := range x {
+			out[i] = float64(v)
+		}
+		return out
+	}
+	return nil
+}
+
 // relClose reports |a-b| <= tol*max(1, |a|, |b|).
 func relClose(a, b, tol float64) bool {
 	scale := math.Max(1, math.Max(math.Abs(a), math.Abs(b)))

@@ -25,9 +25,11 @@ var ErrNonFinite = errors.New("vae: non-finite value")
 type Optimizer int
 
 const (
-	// Adam (Kingma and Ba 2015) with beta1 0.9, beta2 0.999, eps 1e-8.
+	// Adam (Kingma and Ba 2015, Algorithm 1) with beta1 0.9, beta2 0.999
+	// and eps 1e-8.
 	Adam Optimizer = iota
-	// SGD is plain stochastic gradient descent, with optional momentum.
+	// SGD is plain stochastic gradient descent, with heavy-ball momentum
+	// when TrainConfig.Momentum > 0.
 	SGD
 )
 
@@ -197,18 +199,12 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 			return nil, err
 		}
 	}
-	var solver G.Solver
-	switch cfg.Optimizer {
-	case SGD:
-		if cfg.Momentum > 0 {
-			solver = G.NewMomentum(G.WithLearnRate(cfg.LearnRate), G.WithMomentum(cfg.Momentum))
-		} else {
-			solver = G.NewVanillaSolver(G.WithLearnRate(cfg.LearnRate))
-		}
-	default:
-		solver = G.NewAdamSolver(G.WithLearnRate(cfg.LearnRate))
+	opt := newUpdater(cfg)
+	var weights []*tensor.Dense
+	for _, prm := range p.scope.Params() {
+		weights = append(weights, prm.Value)
 	}
-	valueGrads := G.NodesToValueGrads(p.paramNodes)
+	grads := make([]*tensor.Dense, len(p.paramNodes))
 
 	rng := rand.New(rand.NewPCG(cfg.Seed, 0x5eed))
 	noise := rand.New(rand.NewPCG(cfg.Seed, 0x0153))
@@ -265,13 +261,19 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 					return history, fmt.Errorf("vae.Train: epoch %d, step %d: the %s term is %v: %w", epoch, step, term.name, term.v, ErrNonFinite)
 				}
 			}
-			if cfg.ClipNorm > 0 {
-				if err := clipGradients(p.paramNodes, cfg.ClipNorm); err != nil {
-					return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
-				}
+			if err := gradients(p.paramNodes, grads); err != nil {
+				return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
 			}
-			if err := solver.Step(valueGrads); err != nil {
-				return history, fmt.Errorf("vae.Train: step %d: optimiser: %w", step, err)
+			if cfg.ClipNorm > 0 {
+				clipGradients(grads, cfg.ClipNorm)
+			}
+			if err := opt.step(weights, grads); err != nil {
+				return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
+			}
+			// gorgonia adds each run's gradients to what the gradient
+			// tensors hold, so they are cleared for the next step.
+			for _, g := range grads {
+				g.Zero()
 			}
 			c := float64(len(idx))
 			sumLoss += loss * c
@@ -333,28 +335,41 @@ func castTo(dt tensor.Dtype, v float64) any {
 	return v
 }
 
-// clipGradients rescales all gradients together so that their joint L2 norm
-// is at most maxNorm.
-func clipGradients(nodes []*G.Node, maxNorm float64) error {
-	var sq float64
-	grads := make([]*tensor.Dense, 0, len(nodes))
-	for _, n := range nodes {
+// gradients collects the gradient tensors of the parameter nodes.
+func gradients(nodes []*G.Node, out []*tensor.Dense) error {
+	for i, n := range nodes {
 		g, err := n.Grad()
 		if err != nil {
-			return err
+			return fmt.Errorf("gradient of %s: %w", n.Name(), err)
 		}
 		d, ok := g.(*tensor.Dense)
 		if !ok {
-			return fmt.Errorf("gradient of %s is %T", n.Name(), g)
+			return fmt.Errorf("gradient of %s is a %T", n.Name(), g)
 		}
-		grads = append(grads, d)
-		for _, v := range denseFloats(d) {
-			sq += v * v
+		out[i] = d
+	}
+	return nil
+}
+
+// clipGradients rescales all gradients together so that their joint L2 norm
+// is at most maxNorm.
+func clipGradients(grads []*tensor.Dense, maxNorm float64) {
+	var sq float64
+	for _, d := range grads {
+		switch x := d.Data().(type) {
+		case []float64:
+			for _, v := range x {
+				sq += v * v
+			}
+		case []float32:
+			for _, v := range x {
+				sq += float64(v) * float64(v)
+			}
 		}
 	}
 	norm := math.Sqrt(sq)
 	if norm <= maxNorm || norm == 0 {
-		return nil
+		return
 	}
 	scale := maxNorm / norm
 	for _, d := range grads {
@@ -369,21 +384,6 @@ func clipGradients(nodes []*G.Node, maxNorm float64) error {
 			}
 		}
 	}
-	return nil
-}
-
-func denseFloats(d *tensor.Dense) []float64 {
-	switch x := d.Data().(type) {
-	case []float64:
-		return x
-	case []float32:
-		out := make([]float64, len(x))
-		for i, v := range x {
-			out[i] = float64(v)
-		}
-		return out
-	}
-	return nil
 }
 
 // snapshot copies every parameter's values.

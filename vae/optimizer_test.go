@@ -1,0 +1,91 @@
+package vae
+
+import (
+	"math"
+	"math/rand/v2"
+	"testing"
+
+	G "gorgonia.org/gorgonia"
+	"gorgonia.org/tensor"
+)
+
+// optimiserCase runs our updater and a gorgonia solver side by side for a
+// few steps on the same parameters and random gradients, float64, and
+// returns the largest relative difference of the parameters.
+func optimiserCase(t *testing.T, ours updater, theirs G.Solver) float64 {
+	t.Helper()
+	rng := rand.New(rand.NewPCG(1, 2))
+	shapes := [][]int{{3, 4}, {1, 4}, {5}}
+	var mine, ref []*tensor.Dense
+	var nodes []*G.Node
+	g := G.NewGraph()
+	for i, s := range shapes {
+		n := 1
+		for _, d := range s {
+			n *= d
+		}
+		v := make([]float64, n)
+		for j := range v {
+			v[j] = rng.NormFloat64()
+		}
+		mine = append(mine, tensor.New(tensor.WithShape(s...), tensor.WithBacking(append([]float64(nil), v...))))
+		rt := tensor.New(tensor.WithShape(s...), tensor.WithBacking(append([]float64(nil), v...)))
+		ref = append(ref, rt)
+		nodes = append(nodes, G.NewTensor(g, tensor.Float64, len(s), G.WithShape(s...), G.WithValue(rt), G.WithName(string(rune('a'+i)))))
+	}
+	var worst float64
+	for step := 0; step < 7; step++ {
+		var grads []*tensor.Dense
+		var vgs []G.ValueGrad
+		for i, s := range shapes {
+			gv := make([]float64, mine[i].Size())
+			for j := range gv {
+				gv[j] = rng.NormFloat64() * math.Pow(10, float64(j%3-1))
+			}
+			grads = append(grads, tensor.New(tensor.WithShape(s...), tensor.WithBacking(append([]float64(nil), gv...))))
+			gt := tensor.New(tensor.WithShape(s...), tensor.WithBacking(append([]float64(nil), gv...)))
+			vgs = append(vgs, valueGrad{v: ref[i], g: gt})
+		}
+		if err := ours.step(mine, grads); err != nil {
+			t.Fatal(err)
+		}
+		if err := theirs.Step(vgs); err != nil {
+			t.Fatal(err)
+		}
+		for i := range mine {
+			a, b := mine[i].Data().([]float64), ref[i].Data().([]float64)
+			for j := range a {
+				worst = math.Max(worst, math.Abs(a[j]-b[j])/math.Max(1e-12, math.Abs(b[j])))
+			}
+		}
+	}
+	_ = nodes
+	return worst
+}
+
+// valueGrad is a gorgonia ValueGrad over plain tensors.
+type valueGrad struct{ v, g *tensor.Dense }
+
+func (v valueGrad) Value() G.Value         { return v.v }
+func (v valueGrad) Grad() (G.Value, error) { return v.g, nil }
+
+// reference: gorgonia's AdamSolver (an implementation outside this
+// project) with the same settings; both follow Kingma and Ba 2015,
+// Algorithm 1.
+func TestAdamMatchesGorgonia(t *testing.T) {
+	worst := optimiserCase(t, &adam{lr: 0.01, beta1: 0.9, beta2: 0.999, eps: 1e-8},
+		G.NewAdamSolver(G.WithLearnRate(0.01), G.WithBeta1(0.9), G.WithBeta2(0.999), G.WithEps(1e-8)))
+	if worst > 1e-9 {
+		t.Errorf("parameters differ from gorgonia's Adam by up to %v (relative)", worst)
+	}
+}
+
+// reference: gorgonia's Momentum and VanillaSolver.
+func TestSGDMatchesGorgonia(t *testing.T) {
+	if w := optimiserCase(t, &sgd{lr: 0.05}, G.NewVanillaSolver(G.WithLearnRate(0.05))); w > 1e-12 {
+		t.Errorf("plain SGD differs from gorgonia's by up to %v", w)
+	}
+	if w := optimiserCase(t, &sgd{lr: 0.05, momentum: 0.9}, G.NewMomentum(G.WithLearnRate(0.05), G.WithMomentum(0.9))); w > 1e-12 {
+		t.Errorf("SGD with momentum differs from gorgonia's by up to %v", w)
+	}
+}
