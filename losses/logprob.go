@@ -17,7 +17,8 @@ const log2Pi = 1.83787706640934548356065947281123527972279494727556682563430308
 // x and logits have shape (N, F); so has the result. The stable softplus
 // keeps the value exact and finite for any finite logit (+-1e4 included) and
 // its gradient, x - sigmoid(l), finite. gorgonia's own Softplus op is not
-// used: it returns l unchanged above 16, which is off by up to 1e-7.
+// used: it returns l unchanged above 16, which is off by up to 1e-7. The
+// value and its gradient each run as one fused elementwise op.
 //
 // x is normally 0 or 1; values in [0, 1] (grey levels) give the usual
 // continuous cross-entropy, which is not a normalised density.
@@ -29,22 +30,9 @@ func BernoulliLogProb(x, logits *G.Node) (*G.Node, error) {
 	if err := checkSame(where, "logits", logits, "x", x); err != nil {
 		return nil, err
 	}
-	relu, tail, err := softplusParts(logits)
+	out, err := G.ApplyOp(bernoulliOp{}, x, logits)
 	if err != nil {
-		return nil, opError(where, "softplus", err)
-	}
-	xl, err := G.HadamardProd(x, logits)
-	if err != nil {
-		return nil, opError(where, "x*logits", err)
-	}
-	// (x*l - max(l, 0)) - log1p(exp(-|l|)): the first difference is exact
-	// for x in {0, 1}, so the small tail keeps its precision.
-	out, err := G.Sub(xl, relu)
-	if err != nil {
-		return nil, opError(where, "difference", err)
-	}
-	if out, err = G.Sub(out, tail); err != nil {
-		return nil, opError(where, "difference", err)
+		return nil, opError(where, "Bernoulli", err)
 	}
 	return out, nil
 }

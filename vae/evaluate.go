@@ -162,7 +162,7 @@ func columnVariance(v []float64, n, d int) []float64 {
 
 // ScoreOptions configures Score.
 type ScoreOptions struct {
-	// K <= 1 scores each record by its negative ELBO from one posterior
+	// K of 0 or 1 scores each record by its negative ELBO from one posterior
 	// sample; K >= 2 by the importance-weighted estimate of -log p(x)
 	// with K samples, which is less noisy and closer to the true value.
 	K int

@@ -27,24 +27,29 @@ func newUpdater(cfg TrainConfig) updater {
 //	v = beta2*v + (1-beta2)*g^2
 //	w = w - lr * (m / (1-beta1^t)) / (sqrt(v / (1-beta2^t)) + eps)
 //
-// with the moments kept in float64 whatever the parameters' dtype.
+// with the moments kept in the parameters' dtype (float32 moments are what
+// common practice uses for float32 training).
 type adam struct {
 	lr, beta1, beta2, eps float64
 	t                     int
-	m, v                  [][]float64
+	m, v                  []any // []float32 or []float64 per parameter
 }
 
 func (a *adam) step(params, grads []*tensor.Dense) error {
-	if a.m == nil {
-		a.m = make([][]float64, len(params))
-		a.v = make([][]float64, len(params))
-		for i, p := range params {
-			a.m[i] = make([]float64, p.Size())
-			a.v[i] = make([]float64, p.Size())
-		}
-	}
-	if len(params) != len(a.m) || len(grads) != len(params) {
+	if len(grads) != len(params) || (a.m != nil && len(a.m) != len(params)) {
 		return fmt.Errorf("vae: optimiser: %d parameters and %d gradients, want %d", len(params), len(grads), len(a.m))
+	}
+	if a.m == nil {
+		a.m = make([]any, len(params))
+		a.v = make([]any, len(params))
+		for i, p := range params {
+			switch p.Data().(type) {
+			case []float32:
+				a.m[i], a.v[i] = make([]float32, p.Size()), make([]float32, p.Size())
+			default:
+				a.m[i], a.v[i] = make([]float64, p.Size()), make([]float64, p.Size())
+			}
+		}
 	}
 	a.t++
 	c1 := 1 - math.Pow(a.beta1, float64(a.t))
@@ -56,13 +61,13 @@ func (a *adam) step(params, grads []*tensor.Dense) error {
 			if !ok || len(g) != len(w) {
 				return fmt.Errorf("vae: optimiser: gradient %d does not match its parameter", i)
 			}
-			adamUpdate(w, g, a.m[i], a.v[i], a, c1, c2)
+			adamUpdate(w, g, a.m[i].([]float32), a.v[i].([]float32), a, c1, c2)
 		case []float64:
 			g, ok := grads[i].Data().([]float64)
 			if !ok || len(g) != len(w) {
 				return fmt.Errorf("vae: optimiser: gradient %d does not match its parameter", i)
 			}
-			adamUpdate(w, g, a.m[i], a.v[i], a, c1, c2)
+			adamUpdate(w, g, a.m[i].([]float64), a.v[i].([]float64), a, c1, c2)
 		default:
 			return fmt.Errorf("vae: optimiser: parameter %d has dtype %v", i, params[i].Dtype())
 		}
@@ -70,13 +75,18 @@ func (a *adam) step(params, grads []*tensor.Dense) error {
 	return nil
 }
 
-func adamUpdate[T float32 | float64](w, g []T, m, v []float64, a *adam, c1, c2 float64) {
-	b1, b2 := a.beta1, a.beta2
+func adamUpdate[T float32 | float64](w, g, m, v []T, a *adam, c1, c2 float64) {
+	b1, b2 := T(a.beta1), T(a.beta2)
+	ob1, ob2 := T(1-a.beta1), T(1-a.beta2)
+	lr, eps := T(a.lr), T(a.eps)
+	ic1, ic2 := T(1/c1), T(1/c2)
+	m, v, g = m[:len(w)], v[:len(w)], g[:len(w)]
 	for j := range w {
-		gj := float64(g[j])
-		m[j] = b1*m[j] + (1-b1)*gj
-		v[j] = b2*v[j] + (1-b2)*gj*gj
-		w[j] -= T(a.lr * (m[j] / c1) / (math.Sqrt(v[j]/c2) + a.eps))
+		gj := g[j]
+		mj := b1*m[j] + ob1*gj
+		vj := b2*v[j] + ob2*gj*gj
+		m[j], v[j] = mj, vj
+		w[j] -= lr * (mj * ic1) / (T(math.Sqrt(float64(vj*ic2))) + eps)
 	}
 }
 
