@@ -8,14 +8,16 @@ import (
 	"slices"
 
 	"gonum.org/v1/gonum/mat"
+
+	"lowerbound.dev/layers"
 )
 
 // ErrInvalidArgument is wrapped by every error that reports a bad argument
 // (a negative size, a wrong length, an index out of range). The message
-// names the function and the argument. It plays the role layers'
-// ErrInvalidArgument plays for graph code; this package keeps its own so
-// that loading data does not pull in the graph library.
-var ErrInvalidArgument = errors.New("invalid argument")
+// names the function and the argument. It is the SDK's one sentinel for
+// bad arguments, layers.ErrInvalidArgument, so errors.Is works the same
+// for data and graph code.
+var ErrInvalidArgument = layers.ErrInvalidArgument
 
 // ErrInvalidData is wrapped by every error that reports bad data (as opposed
 // to a bad argument): a NaN or infinite value, a malformed file, a label out

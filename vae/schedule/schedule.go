@@ -1,14 +1,16 @@
 package schedule
 
 import (
-	"errors"
 	"fmt"
 	"math"
+
+	"lowerbound.dev/layers"
 )
 
 // ErrInvalidArgument is wrapped by every error that reports a bad field or
-// argument. The message names the type (or function) and the field.
-var ErrInvalidArgument = errors.New("invalid argument")
+// argument. The message names the type (or function) and the field. It is
+// the SDK's one sentinel for bad arguments, layers.ErrInvalidArgument.
+var ErrInvalidArgument = layers.ErrInvalidArgument
 
 func argError(where, field, format string, a ...any) error {
 	return fmt.Errorf("%s: %s: %s: %w", where, field, fmt.Sprintf(format, a...), ErrInvalidArgument)
