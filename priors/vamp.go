@@ -188,6 +188,11 @@ func (p *Vamp) LogProb(s *layers.Scope, z *G.Node) (*G.Node, error) {
 // Posteriors runs the encoder and head on the current pseudo-inputs in a
 // small graph of its own and returns the component means and
 // log-variances, each (K, D) in the prior's dtype.
+//
+// Compiling that graph writes bookkeeping into the encoder's parameter
+// tensors (a gorgonia detail), so do not call Posteriors or Sample while
+// other goroutines run graphs over the same encoder; vae.Model.SamplePrior
+// takes care of that for a model's prior.
 func (p *Vamp) Posteriors() (mu, logVar *tensor.Dense, err error) {
 	const where = "priors.Vamp.Posteriors"
 	g := G.NewGraph()
