@@ -188,20 +188,11 @@ func makeData(cfg config) (*data, error) {
 		return nil, err
 	}
 	valFrom := fleet.Start().AddDate(0, 0, cfg.HistoryDays-cfg.ValDays)
-	trainRecs, valRecs := fleet.SplitAt(f.History, valFrom)
+	trainRaw, valRaw, testRaw, err := f.Sets(valFrom)
+	if err != nil {
+		return nil, err
+	}
 	d := &data{}
-	trainRaw, err := fleet.ToSet(trainRecs)
-	if err != nil {
-		return nil, err
-	}
-	valRaw, err := fleet.ToSet(valRecs)
-	if err != nil {
-		return nil, err
-	}
-	testRaw, err := fleet.ToSet(f.Test)
-	if err != nil {
-		return nil, err
-	}
 	z, err := dataset.FitStandardizer(trainRaw)
 	if err != nil {
 		return nil, err

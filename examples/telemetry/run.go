@@ -177,16 +177,7 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		return res, err
 	}
 	valFrom := fleet.Start().AddDate(0, 0, cfg.HistoryDays-cfg.ValDays)
-	trainRecs, valRecs := fleet.SplitAt(fl.History, valFrom)
-	trainRaw, err := fleet.ToSet(trainRecs)
-	if err != nil {
-		return res, err
-	}
-	valRaw, err := fleet.ToSet(valRecs)
-	if err != nil {
-		return res, err
-	}
-	testRaw, err := fleet.ToSet(fl.Test)
+	trainRaw, valRaw, testRaw, err := fl.Sets(valFrom)
 	if err != nil {
 		return res, err
 	}

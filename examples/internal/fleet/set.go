@@ -43,3 +43,20 @@ func SplitAt(recs []Record, t time.Time) (before, after []Record) {
 	}
 	return before, after
 }
+
+// Sets returns the fleet's records as data sets in raw units: the history
+// before valFrom for training, the rest of the history for validation, and
+// the test period (see ToSet).
+func (f *Fleet) Sets(valFrom time.Time) (train, val, test *dataset.Set, err error) {
+	trainRecs, valRecs := SplitAt(f.History, valFrom)
+	if train, err = ToSet(trainRecs); err != nil {
+		return nil, nil, nil, fmt.Errorf("training records: %w", err)
+	}
+	if val, err = ToSet(valRecs); err != nil {
+		return nil, nil, nil, fmt.Errorf("validation records: %w", err)
+	}
+	if test, err = ToSet(f.Test); err != nil {
+		return nil, nil, nil, fmt.Errorf("test records: %w", err)
+	}
+	return train, val, test, nil
+}

@@ -63,3 +63,30 @@ func TestSplitAt(t *testing.T) {
 		t.Errorf("after (the split time itself belongs here): %v", after)
 	}
 }
+
+func TestSetsSplitInTime(t *testing.T) {
+	f, err := GenerateFleet(FleetConfig{Stations: 2, HistoryDays: 3, TestDays: 1, Seed: 4})
+	if err != nil {
+		t.Fatal(err)
+	}
+	valFrom := Start().AddDate(0, 0, 2)
+	train, val, test, err := f.Sets(valFrom)
+	if err != nil {
+		t.Fatal(err)
+	}
+	before, after := SplitAt(f.History, valFrom)
+	if train.Len() != len(before) || val.Len() != len(after) || test.Len() != len(f.Test) {
+		t.Fatalf("sizes %d/%d/%d, want %d/%d/%d", train.Len(), val.Len(), test.Len(), len(before), len(after), len(f.Test))
+	}
+	if train.Len()+val.Len() != len(f.History) || train.Len() == 0 || val.Len() == 0 {
+		t.Errorf("history of %d records split into %d and %d", len(f.History), train.Len(), val.Len())
+	}
+	for i, r := range after {
+		row := val.Row(i)
+		for j, v := range r.Values {
+			if row[j] != v {
+				t.Fatalf("validation record %d, sensor %d: %v, want %v", i, j, row[j], v)
+			}
+		}
+	}
+}
