@@ -123,12 +123,12 @@ func toSafetensor(p *layers.Param) (safetensors.Tensor, error) {
 
 // Load reads a checkpoint written by Save and rebuilds the model from the
 // description in its metadata. A truncated, corrupt or inconsistent file
-// returns an error wrapping ErrCheckpoint (or the file reader's own error)
-// and no model.
+// returns an error wrapping ErrCheckpoint and no model; a missing file, the
+// operating system's error.
 func Load(path string) (*Model, error) {
-	f, err := safetensors.ReadFile(path)
+	f, err := readCheckpoint("vae.Load", path)
 	if err != nil {
-		return nil, fmt.Errorf("vae.Load: %w", err)
+		return nil, err
 	}
 	bad := func(format string, a ...any) error {
 		return fmt.Errorf("vae.Load: %s: %w: %s", path, ErrCheckpoint, fmt.Sprintf(format, a...))
@@ -199,9 +199,9 @@ func Load(path string) (*Model, error) {
 // It checks everything before it changes anything: on error m is as it was.
 // Extra metadata in the file replaces m's.
 func (m *Model) LoadWeights(path string) error {
-	f, err := safetensors.ReadFile(path)
+	f, err := readCheckpoint("vae.LoadWeights", path)
 	if err != nil {
-		return fmt.Errorf("vae.LoadWeights: %w", err)
+		return err
 	}
 	if err := m.setWeights(f, path); err != nil {
 		return err
@@ -215,6 +215,22 @@ func (m *Model) LoadWeights(path string) error {
 		}
 	}
 	return nil
+}
+
+// readCheckpoint reads a safetensors file. A file that is not valid
+// safetensors (truncated, corrupt) gives an error that wraps both
+// ErrCheckpoint and the reader's own sentinel; a missing or unreadable file
+// gives the operating system's error.
+func readCheckpoint(where, path string) (*safetensors.File, error) {
+	f, err := safetensors.ReadFile(path)
+	switch {
+	case err == nil:
+		return f, nil
+	case errors.Is(err, safetensors.ErrCorrupt):
+		return nil, fmt.Errorf("%s: %w: %w", where, ErrCheckpoint, err)
+	default:
+		return nil, fmt.Errorf("%s: %w", where, err)
+	}
 }
 
 // setWeights checks that f holds exactly m's parameters and copies them in.

@@ -233,8 +233,32 @@ func loadNoPanic(t *testing.T, path, what string) (m *Model, err error) {
 	return Load(path)
 }
 
-func isCheckpointError(err error) bool {
-	return errors.Is(err, ErrCheckpoint) || errors.Is(err, safetensors.ErrCorrupt)
+// isCheckpointError reports whether err is a bad-checkpoint error: every
+// such error wraps ErrCheckpoint, whether the file reader or the model
+// found the fault.
+func isCheckpointError(err error) bool { return errors.Is(err, ErrCheckpoint) }
+
+// A missing file is not a bad checkpoint: the caller sees the operating
+// system's error.
+func TestLoadMissingFile(t *testing.T) {
+	_, err := Load(filepath.Join(t.TempDir(), "absent.safetensors"))
+	if !errors.Is(err, os.ErrNotExist) || errors.Is(err, ErrCheckpoint) {
+		t.Fatalf("Load of a missing file: %v; want os.ErrNotExist and not ErrCheckpoint", err)
+	}
+}
+
+// A truncated file wraps both ErrCheckpoint and the reader's sentinel.
+func TestLoadTruncatedWrapsReaderError(t *testing.T) {
+	dir := t.TempDir()
+	_, full := smallCheckpoint(t, dir)
+	path := filepath.Join(dir, "cut.safetensors")
+	if err := os.WriteFile(path, full[:len(full)-3], 0o644); err != nil {
+		t.Fatal(err)
+	}
+	_, err := Load(path)
+	if !errors.Is(err, ErrCheckpoint) || !errors.Is(err, safetensors.ErrTruncated) {
+		t.Fatalf("Load of a truncated file: %v; want ErrCheckpoint and safetensors.ErrTruncated", err)
+	}
 }
 
 func TestLoadTruncated(t *testing.T) {
@@ -264,7 +288,7 @@ func TestLoadTruncated(t *testing.T) {
 			t.Fatalf("%s: Load gave model %v, error %v", what, m != nil, err)
 		}
 		if !isCheckpointError(err) {
-			t.Fatalf("%s: error %v wraps neither ErrCheckpoint nor safetensors.ErrCorrupt", what, err)
+			t.Fatalf("%s: error %v does not wrap ErrCheckpoint", what, err)
 		}
 		if err := target.LoadWeights(path); err == nil {
 			t.Fatalf("%s: LoadWeights succeeded", what)
