@@ -97,36 +97,12 @@ func GaussianLogProbLearned(x, mean, logSigma *G.Node) (*G.Node, error) {
 	if err := checkRows(where, "logSigma", logSigma, "x", x); err != nil {
 		return nil, err
 	}
-	d, err := G.Sub(x, mean)
+	// log N(x; mean, sigma^2) with log sigma^2 = 2*logSigma.
+	logVar, err := G.Mul(logSigma, scalar(x, 2))
 	if err != nil {
-		return nil, opError(where, "x - mean", err)
+		return nil, opError(where, "2*logSigma", err)
 	}
-	sq, err := G.Square(d)
-	if err != nil {
-		return nil, opError(where, "square", err)
-	}
-	m2ls, err := G.Mul(logSigma, scalar(x, -2))
-	if err != nil {
-		return nil, opError(where, "-2*logSigma", err)
-	}
-	prec, err := G.Exp(m2ls)
-	if err != nil {
-		return nil, opError(where, "precision", err)
-	}
-	q, err := rowMul(sq, prec)
-	if err != nil {
-		return nil, opError(where, "scaled square", err)
-	}
-	if q, err = G.Mul(q, scalar(x, -0.5)); err != nil {
-		return nil, opError(where, "scale", err)
-	}
-	if q, err = rowSub(q, logSigma); err != nil {
-		return nil, opError(where, "log sigma", err)
-	}
-	if q, err = G.Sub(q, scalar(x, 0.5*log2Pi)); err != nil {
-		return nil, opError(where, "constant", err)
-	}
-	return q, nil
+	return diagGaussian(where, x, mean, logVar)
 }
 
 // DiagGaussianLogProb returns the log-density of a diagonal Gaussian per
@@ -148,6 +124,13 @@ func DiagGaussianLogProb(z, mu, logVar *G.Node) (*G.Node, error) {
 	if err := checkRows(where, "logVar", logVar, "z", z); err != nil {
 		return nil, err
 	}
+	return diagGaussian(where, z, mu, logVar)
+}
+
+// diagGaussian builds -0.5*(log(2 pi) + logVar + (z - mu)^2 * exp(-logVar))
+// for shapes the caller has checked: z (N, D), mu and logVar (N, D) or
+// (1, D).
+func diagGaussian(where string, z, mu, logVar *G.Node) (*G.Node, error) {
 	d, err := rowSub(z, mu)
 	if err != nil {
 		return nil, opError(where, "z - mu", err)
