@@ -65,25 +65,15 @@ func (p *Diagonal) LogProb(s *layers.Scope, z *G.Node) (*G.Node, error) {
 		return nil, err
 	}
 	perDim, err := losses.DiagGaussianLogProb(z, s.Bind(p.mean), s.Bind(p.logVar))
-	if err != nil {
-		return nil, fmt.Errorf("%s: %w", where, err)
-	}
-	out, err := losses.PerSample(perDim)
-	if err != nil {
-		return nil, fmt.Errorf("%s: %w", where, err)
-	}
-	return out, nil
+	return sumDims(where, perDim, err)
 }
 
 // KL returns KL(N(mu, exp(logVar)) || N(m, exp(v))) per dimension, shape
 // (N, D); gradients reach both q's and the prior's parameters.
 func (p *Diagonal) KL(s *layers.Scope, mu, logVar *G.Node) (*G.Node, error) {
 	const where = "priors.Diagonal.KL"
-	if err := checkZ(where, s, mu, p.dim, p.dtype); err != nil {
+	if err := checkKL(where, s, mu, logVar, p.dim, p.dtype); err != nil {
 		return nil, err
-	}
-	if logVar == nil || !logVar.Shape().Eq(mu.Shape()) {
-		return nil, argError(where, "logVar", "want the shape of mu %v", mu.Shape())
 	}
 	out, err := losses.KLDiagonal(mu, logVar, s.Bind(p.mean), s.Bind(p.logVar))
 	if err != nil {

@@ -48,25 +48,15 @@ func (p *StandardNormal) LogProb(s *layers.Scope, z *G.Node) (*G.Node, error) {
 		return nil, err
 	}
 	perDim, err := losses.StandardNormalLogProb(z)
-	if err != nil {
-		return nil, fmt.Errorf("%s: %w", where, err)
-	}
-	out, err := losses.PerSample(perDim)
-	if err != nil {
-		return nil, fmt.Errorf("%s: %w", where, err)
-	}
-	return out, nil
+	return sumDims(where, perDim, err)
 }
 
 // KL returns KL(N(mu, exp(logVar)) || N(0, I)) per dimension, shape (N, D)
 // (Kingma and Welling 2014, appendix B).
 func (p *StandardNormal) KL(s *layers.Scope, mu, logVar *G.Node) (*G.Node, error) {
 	const where = "priors.StandardNormal.KL"
-	if err := checkZ(where, s, mu, p.dim, p.dtype); err != nil {
+	if err := checkKL(where, s, mu, logVar, p.dim, p.dtype); err != nil {
 		return nil, err
-	}
-	if logVar == nil || !logVar.Shape().Eq(mu.Shape()) {
-		return nil, argError(where, "logVar", "want the shape of mu %v", mu.Shape())
 	}
 	out, err := losses.KLStandardNormal(mu, logVar)
 	if err != nil {

@@ -10,6 +10,7 @@ import (
 	"gorgonia.org/tensor"
 
 	"lowerbound.dev/layers"
+	"lowerbound.dev/losses"
 )
 
 // ErrUnknownKind is wrapped by FromSpec when a Spec names a kind of prior
@@ -175,4 +176,27 @@ func sampleMixture(rng *rand.Rand, n, d int, w, mu, lv []float64, dt tensor.Dtyp
 		}
 	}
 	return denseOf(dt, out, n, d)
+}
+
+// checkKL validates the arguments of a closed-form KL: mu as checkZ checks
+// z, and logVar of mu's shape.
+func checkKL(where string, s *layers.Scope, mu, logVar *G.Node, d int, dt tensor.Dtype) error {
+	if err := checkZ(where, s, mu, d, dt); err != nil {
+		return err
+	}
+	if logVar == nil || !logVar.Shape().Eq(mu.Shape()) {
+		return argError(where, "logVar", "want the shape of mu %v", mu.Shape())
+	}
+	return nil
+}
+
+// sumDims turns a per-dimension log-density (N, D) into one value per row.
+func sumDims(where string, perDim *G.Node, err error) (*G.Node, error) {
+	if err == nil {
+		perDim, err = losses.PerSample(perDim)
+	}
+	if err != nil {
+		return nil, fmt.Errorf("%s: %w", where, err)
+	}
+	return perDim, nil
 }
