@@ -213,13 +213,8 @@ type Capacity struct {
 // Max * step / Steps before step Steps and Max from then on. Steps <= 0
 // gives Max at every step.
 func (c Capacity) Target(step int) float64 {
-	if step < 0 {
-		step = 0
-	}
-	if c.Steps <= 0 || step >= c.Steps {
-		return c.Max
-	}
-	return c.Max * float64(step) / float64(c.Steps)
+	// The same ramp as a linear warm-up from 0 to Max.
+	return LinearWarmup{End: c.Max, Steps: c.Steps}.At(step)
 }
 
 // Penalty returns Gamma * |kl - Target(step)|, the term subtracted from the
