@@ -123,17 +123,14 @@ Flags:
 }
 
 func (c config) validate() error {
+	if err := fleet.CheckFlags(c.Stations, c.HistoryDays, c.ValDays, c.TestDays); err != nil {
+		return err
+	}
 	switch {
 	case c.Out == "":
 		return errors.New("-out: empty")
 	case c.Epochs < 1:
 		return fmt.Errorf("-epochs %d: want >= 1", c.Epochs)
-	case c.Stations < 1:
-		return fmt.Errorf("-stations %d: want >= 1", c.Stations)
-	case c.ValDays < 1 || c.HistoryDays <= c.ValDays:
-		return fmt.Errorf("-days %d, -val-days %d: want 1 <= val-days < days", c.HistoryDays, c.ValDays)
-	case c.TestDays < 1:
-		return fmt.Errorf("-test-days %d: want >= 1", c.TestDays)
 	case c.K < 2:
 		return fmt.Errorf("-k %d: want >= 2", c.K)
 	case c.Latent < 1:

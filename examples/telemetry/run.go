@@ -125,17 +125,14 @@ type Result struct {
 }
 
 func (c Config) validate() error {
+	if err := fleet.CheckFlags(c.Stations, c.HistoryDays, c.ValDays, c.TestDays); err != nil {
+		return err
+	}
 	switch {
 	case c.Out == "":
 		return errors.New("-out: empty")
 	case c.Epochs < 1:
 		return fmt.Errorf("-epochs %d: want >= 1", c.Epochs)
-	case c.Stations < 1:
-		return fmt.Errorf("-stations %d: want >= 1", c.Stations)
-	case c.ValDays < 1 || c.HistoryDays <= c.ValDays:
-		return fmt.Errorf("-days %d, -val-days %d: want 1 <= val-days < days", c.HistoryDays, c.ValDays)
-	case c.TestDays < 1:
-		return fmt.Errorf("-test-days %d: want >= 1", c.TestDays)
 	case c.Interval != 0 && (c.Interval < time.Minute || c.Interval > 6*time.Hour):
 		return fmt.Errorf("-interval %v: want between 1m and 6h", c.Interval)
 	case c.K < 1:

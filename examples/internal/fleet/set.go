@@ -60,3 +60,17 @@ func (f *Fleet) Sets(valFrom time.Time) (train, val, test *dataset.Set, err erro
 	}
 	return train, val, test, nil
 }
+
+// CheckFlags validates the fleet flags the examples share (-stations,
+// -days, -val-days, -test-days) and names the flag at fault.
+func CheckFlags(stations, days, valDays, testDays int) error {
+	switch {
+	case stations < 1:
+		return fmt.Errorf("-stations %d: want >= 1", stations)
+	case valDays < 1 || days <= valDays:
+		return fmt.Errorf("-days %d, -val-days %d: want 1 <= val-days < days", days, valDays)
+	case testDays < 1:
+		return fmt.Errorf("-test-days %d: want >= 1", testDays)
+	}
+	return nil
+}

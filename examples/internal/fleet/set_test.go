@@ -3,6 +3,7 @@ package fleet
 import (
 	"errors"
 	"math"
+	"strings"
 	"testing"
 	"time"
 )
@@ -87,6 +88,26 @@ func TestSetsSplitInTime(t *testing.T) {
 			if row[j] != v {
 				t.Fatalf("validation record %d, sensor %d: %v, want %v", i, j, row[j], v)
 			}
+		}
+	}
+}
+
+func TestCheckFlags(t *testing.T) {
+	if err := CheckFlags(3, 5, 1, 2); err != nil {
+		t.Errorf("valid flags: %v", err)
+	}
+	for _, c := range []struct {
+		stations, days, val, test int
+		flag                      string
+	}{
+		{0, 5, 1, 2, "-stations"},
+		{3, 5, 0, 2, "-val-days"},
+		{3, 5, 5, 2, "-val-days"},
+		{3, 5, 1, 0, "-test-days"},
+	} {
+		err := CheckFlags(c.stations, c.days, c.val, c.test)
+		if err == nil || !strings.Contains(err.Error(), c.flag) {
+			t.Errorf("CheckFlags(%d, %d, %d, %d) = %v, want an error naming %s", c.stations, c.days, c.val, c.test, err, c.flag)
 		}
 	}
 }
