@@ -84,7 +84,7 @@ func (m *Model) checkLabels(where string, labels []int, n int) error {
 func (m *Model) fillInputs(p *program, data *dataset.Set, idx []int) error {
 	b, k := p.key.batch, p.key.k
 	if p.x != nil {
-		zero(p.x)
+		p.x.Zero()
 		if err := fillPrefix(p.x, data, idx, m.width); err != nil {
 			return err
 		}
@@ -106,7 +106,7 @@ func (m *Model) fillInputs(p *program, data *dataset.Set, idx []int) error {
 func (m *Model) fillLabels(p *program, labels []int) {
 	c := m.cfg.Classes
 	if p.y != nil {
-		zero(p.y)
+		p.y.Zero()
 		for i, l := range labels {
 			setAt(p.y, i*c+l, 1)
 		}
@@ -115,15 +115,13 @@ func (m *Model) fillLabels(p *program, labels []int) {
 		}
 	}
 	if p.planes != nil {
-		zero(p.planes)
+		p.planes.Zero()
 		hw := m.cfg.InputShape[1] * m.cfg.InputShape[2]
 		for i, l := range labels {
 			fillRange(p.planes, (i*c+l)*hw, (i*c+l+1)*hw, 1)
 		}
 	}
 }
-
-func zero(t *tensor.Dense) { t.Zero() }
 
 // fillRange sets elements [from, to) of t to v.
 func fillRange(t *tensor.Dense, from, to int, v float64) {
@@ -179,7 +177,7 @@ func repeatBlock(dst, src *tensor.Dense, k int) {
 // results independent of how records are split into batches, and so
 // identical between serial and concurrent calls.
 func fillNoise(t *tensor.Dense, seed uint64, first, count, b, k, d int) {
-	zero(t)
+	t.Zero()
 	f32, _ := t.Data().([]float32)
 	f64, _ := t.Data().([]float64)
 	for i := 0; i < count; i++ {
@@ -279,7 +277,7 @@ func (m *Model) Decode(ctx context.Context, z mat.Matrix, labels []int) (*mat.De
 	}
 	out := mat.NewDense(n, m.width, nil)
 	err := m.forChunks(ctx, kindDecode, n, 1, func(p *program, first int, idx []int) error {
-		zero(p.z)
+		p.z.Zero()
 		for i := range idx {
 			for j := 0; j < d; j++ {
 				v := z.At(first+i, j)

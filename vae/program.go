@@ -90,7 +90,7 @@ func (m *Model) repeatRows(g *G.ExprGraph, a *G.Node, k int) (*G.Node, error) {
 	s := a.Shape()
 	b, c := s[0], s[1]
 	ones := tensor.New(tensor.WithShape(k, 1), tensor.Of(m.dtype))
-	if err := ones.Memset(oneOf(m.dtype)); err != nil {
+	if err := ones.Memset(castTo(m.dtype, 1)); err != nil {
 		return nil, err
 	}
 	onesN := G.NewMatrix(g, m.dtype, G.WithShape(k, 1), G.WithValue(ones), G.WithName(fmt.Sprintf("ones_%d_%d", k, g.AllNodes().Len())))
@@ -103,13 +103,6 @@ func (m *Model) repeatRows(g *G.ExprGraph, a *G.Node, k int) (*G.Node, error) {
 		return nil, err
 	}
 	return G.Reshape(rep, tensor.Shape{k * b, c})
-}
-
-func oneOf(dt tensor.Dtype) any {
-	if dt == tensor.Float32 {
-		return float32(1)
-	}
-	return float64(1)
 }
 
 // build compiles a program. It is called with m.mu held or before the model

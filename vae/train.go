@@ -233,7 +233,7 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 			if err := layers.FillNormal(noise, p.eps); err != nil {
 				return history, err
 			}
-			zero(p.mask)
+			p.mask.Zero()
 			for i := range idx {
 				setAt(p.mask, i, 1)
 			}

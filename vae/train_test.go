@@ -117,7 +117,7 @@ func TestRaggedBatchMatchesExactBatch(t *testing.T) {
 				for i := len(eps); i < len(e); i++ {
 					e[i] = 5 // padding noise, must not matter
 				}
-				zero(p.mask)
+				p.mask.Zero()
 				for i := range idx {
 					setAt(p.mask, i, 1)
 				}
