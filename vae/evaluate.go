@@ -73,11 +73,7 @@ func (m *Model) Evaluate(ctx context.Context, data *dataset.Set, opt EvalOptions
 	means := make([]float64, 0, n*d)
 	var sumRec, sumKL, sumIW float64
 	err := m.forChunks(ctx, kindEvaluate, n, k, func(p *program, first int, idx []int) error {
-		if err := m.fillInputs(p, data, idx); err != nil {
-			return err
-		}
-		fillNoise(p.eps, opt.Seed, first, len(idx), p.key.batch, k, d)
-		if err := p.run(); err != nil {
+		if err := m.runSampled(p, data, first, idx, opt.Seed); err != nil {
 			return err
 		}
 		ll, kl, mu := p.values(p.logLik), p.values(p.kl), p.values(p.mu)
@@ -187,11 +183,7 @@ func (m *Model) Score(ctx context.Context, data *dataset.Set, opt ScoreOptions) 
 	}
 	out := make([]float64, n)
 	err := m.forChunks(ctx, kindEvaluate, n, k, func(p *program, first int, idx []int) error {
-		if err := m.fillInputs(p, data, idx); err != nil {
-			return err
-		}
-		fillNoise(p.eps, opt.Seed, first, len(idx), p.key.batch, k, m.latent)
-		if err := p.run(); err != nil {
+		if err := m.runSampled(p, data, first, idx, opt.Seed); err != nil {
 			return err
 		}
 		if k >= 2 {
@@ -211,4 +203,15 @@ func (m *Model) Score(ctx context.Context, data *dataset.Set, opt ScoreOptions) 
 		return nil, err
 	}
 	return out, nil
+}
+
+// runSampled runs an evaluation program on records idx of data, the first
+// of which is record first of the call, with the noise fillNoise draws for
+// them from seed.
+func (m *Model) runSampled(p *program, data *dataset.Set, first int, idx []int, seed uint64) error {
+	if err := m.fillInputs(p, data, idx); err != nil {
+		return err
+	}
+	fillNoise(p.eps, seed, first, len(idx), p.key.batch, p.key.k, m.latent)
+	return p.run()
 }
