@@ -2,22 +2,24 @@ package layers
 
 import (
 	"encoding/json"
-	"errors"
-	"fmt"
 
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
+
+	"lowerbound.dev/internal/errs"
 )
 
 // ErrInvalidArgument is wrapped by every error that reports a bad argument
 // (a size of zero, a mismatched shape, an unknown activation). Callers can
 // branch on it with errors.Is; the message names the argument.
-var ErrInvalidArgument = errors.New("invalid argument")
+// It is the SDK's one sentinel for bad arguments: vae, dataset and schedule
+// re-export the same value.
+var ErrInvalidArgument = errs.InvalidArgument
 
 // argError returns an error wrapping ErrInvalidArgument that names where
 // (the function or layer) and which argument is wrong.
 func argError(where, arg, format string, a ...any) error {
-	return fmt.Errorf("%s: %s: %s: %w", where, arg, fmt.Sprintf(format, a...), ErrInvalidArgument)
+	return errs.Arg(where, arg, format, a...)
 }
 
 // Param is one learnable tensor. Its Name is stable: it is the tensor's name

@@ -9,15 +9,15 @@ import (
 
 	"gonum.org/v1/gonum/mat"
 
-	"lowerbound.dev/layers"
+	"lowerbound.dev/internal/errs"
 )
 
 // ErrInvalidArgument is wrapped by every error that reports a bad argument
 // (a negative size, a wrong length, an index out of range). The message
 // names the function and the argument. It is the SDK's one sentinel for
-// bad arguments, layers.ErrInvalidArgument, so errors.Is works the same
+// bad arguments (layers.ErrInvalidArgument holds the same value), so errors.Is works the same
 // for data and graph code.
-var ErrInvalidArgument = layers.ErrInvalidArgument
+var ErrInvalidArgument = errs.InvalidArgument
 
 // ErrInvalidData is wrapped by every error that reports bad data (as opposed
 // to a bad argument): a NaN or infinite value, a malformed file, a label out

@@ -4,13 +4,13 @@ import (
 	"fmt"
 	"math"
 
-	"lowerbound.dev/layers"
+	"lowerbound.dev/internal/errs"
 )
 
 // ErrInvalidArgument is wrapped by every error that reports a bad field or
 // argument. The message names the type (or function) and the field. It is
-// the SDK's one sentinel for bad arguments, layers.ErrInvalidArgument.
-var ErrInvalidArgument = layers.ErrInvalidArgument
+// the SDK's one sentinel for bad arguments (layers.ErrInvalidArgument holds the same value).
+var ErrInvalidArgument = errs.InvalidArgument
 
 func argError(where, field, format string, a ...any) error {
 	return fmt.Errorf("%s: %s: %s: %w", where, field, fmt.Sprintf(format, a...), ErrInvalidArgument)
