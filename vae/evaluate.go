@@ -54,6 +54,10 @@ type Report struct {
 
 // Evaluate computes the report over every record of data.
 func (m *Model) Evaluate(ctx context.Context, data *dataset.Set, opt EvalOptions) (Report, error) {
+	return m.evaluate(ctx, data, opt, defaultInferLimits())
+}
+
+func (m *Model) evaluate(ctx context.Context, data *dataset.Set, opt EvalOptions, lim inferLimits) (Report, error) {
 	if err := m.checkData("Evaluate", data); err != nil {
 		return Report{}, err
 	}
@@ -72,7 +76,7 @@ func (m *Model) Evaluate(ctx context.Context, data *dataset.Set, opt EvalOptions
 	var klDim []float64
 	means := make([]float64, 0, n*d)
 	var sumRec, sumKL, sumIW float64
-	err := m.forChunks(ctx, kindEvaluate, n, k, func(p *program, first int, idx []int) error {
+	err := m.forChunks(ctx, kindEvaluate, n, k, lim, func(p *program, first int, idx []int) error {
 		if err := m.runSampled(p, data, first, idx, opt.Seed); err != nil {
 			return err
 		}
@@ -170,6 +174,10 @@ type ScoreOptions struct {
 // Score returns one anomaly score per record: higher means less likely
 // under the model. See ScoreOptions for the two scores.
 func (m *Model) Score(ctx context.Context, data *dataset.Set, opt ScoreOptions) ([]float64, error) {
+	return m.score(ctx, data, opt, defaultInferLimits())
+}
+
+func (m *Model) score(ctx context.Context, data *dataset.Set, opt ScoreOptions, lim inferLimits) ([]float64, error) {
 	if err := m.checkData("Score", data); err != nil {
 		return nil, err
 	}
@@ -182,7 +190,7 @@ func (m *Model) Score(ctx context.Context, data *dataset.Set, opt ScoreOptions) 
 		return nil, fmt.Errorf("vae.Score: data: no records: %w", layers.ErrInvalidArgument)
 	}
 	out := make([]float64, n)
-	err := m.forChunks(ctx, kindEvaluate, n, k, func(p *program, first int, idx []int) error {
+	err := m.forChunks(ctx, kindEvaluate, n, k, lim, func(p *program, first int, idx []int) error {
 		if err := m.runSampled(p, data, first, idx, opt.Seed); err != nil {
 			return err
 		}

@@ -23,12 +23,26 @@ const maxInferBatch = 128
 // K*batch*F values).
 const maxSampleRows = 16384
 
+// inferLimits holds the bounds of the inference loops. The methods use
+// defaultInferLimits; tests shrink the bounds and watch the runs.
+type inferLimits struct {
+	// sampleRows bounds K times the batch of one program run.
+	sampleRows int
+	// beforeRun, when not nil, is called before every program run with
+	// the program's key (tests count runs with it).
+	beforeRun func(programKey)
+}
+
+func defaultInferLimits() inferLimits {
+	return inferLimits{sampleRows: maxSampleRows}
+}
+
 // inferBatch returns the batch size of the program for the next n records
 // with K samples each: a power of two, at most maxInferBatch and, for K > 1,
-// at most maxSampleRows/K (but at least 1).
-func inferBatch(n, k int) int {
+// at most rows/K (but at least 1).
+func inferBatch(n, k, rows int) int {
 	limit := maxInferBatch
-	for limit > 1 && limit*k > maxSampleRows {
+	for limit > 1 && limit*k > rows {
 		limit /= 2
 	}
 	b := 1
@@ -198,7 +212,7 @@ func fillNoise(t *tensor.Dense, seed uint64, first, count, b, k, d int) {
 
 // forChunks runs fn over consecutive chunks of n records, each with a
 // program of the given kind and K.
-func (m *Model) forChunks(ctx context.Context, kind programKind, n, k int, fn func(p *program, first int, idx []int) error) error {
+func (m *Model) forChunks(ctx context.Context, kind programKind, n, k int, lim inferLimits, fn func(p *program, first int, idx []int) error) error {
 	if ctx == nil {
 		ctx = context.Background()
 	}
@@ -206,7 +220,7 @@ func (m *Model) forChunks(ctx context.Context, kind programKind, n, k int, fn fu
 		if err := ctx.Err(); err != nil {
 			return err
 		}
-		b := inferBatch(n-first, k)
+		b := inferBatch(n-first, k, lim.sampleRows)
 		count := min(b, n-first)
 		p, err := m.acquire(programKey{kind: kind, batch: b, k: k})
 		if err != nil {
@@ -215,6 +229,9 @@ func (m *Model) forChunks(ctx context.Context, kind programKind, n, k int, fn fu
 		idx := make([]int, count)
 		for i := range idx {
 			idx[i] = first + i
+		}
+		if lim.beforeRun != nil {
+			lim.beforeRun(p.key)
 		}
 		m.engine.RLock()
 		err = fn(p, first, idx)
@@ -239,7 +256,7 @@ func (m *Model) Encode(ctx context.Context, data *dataset.Set) (mean, sigma *mat
 		return nil, nil, fmt.Errorf("vae.Encode: data: no records: %w", layers.ErrInvalidArgument)
 	}
 	mean, sigma = mat.NewDense(n, d, nil), mat.NewDense(n, d, nil)
-	err = m.forChunks(ctx, kindEncode, n, 1, func(p *program, first int, idx []int) error {
+	err = m.forChunks(ctx, kindEncode, n, 1, defaultInferLimits(), func(p *program, first int, idx []int) error {
 		if err := m.fillInputs(p, data, idx); err != nil {
 			return err
 		}
@@ -276,7 +293,7 @@ func (m *Model) Decode(ctx context.Context, z mat.Matrix, labels []int) (*mat.De
 		return nil, err
 	}
 	out := mat.NewDense(n, m.width, nil)
-	err := m.forChunks(ctx, kindDecode, n, 1, func(p *program, first int, idx []int) error {
+	err := m.forChunks(ctx, kindDecode, n, 1, defaultInferLimits(), func(p *program, first int, idx []int) error {
 		p.z.Zero()
 		for i := range idx {
 			for j := 0; j < d; j++ {
@@ -322,7 +339,7 @@ func (m *Model) Reconstruct(ctx context.Context, data *dataset.Set) (*mat.Dense,
 		return nil, fmt.Errorf("vae.Reconstruct: data: no records: %w", layers.ErrInvalidArgument)
 	}
 	out := mat.NewDense(n, m.width, nil)
-	err := m.forChunks(ctx, kindReconstruct, n, 1, func(p *program, first int, idx []int) error {
+	err := m.forChunks(ctx, kindReconstruct, n, 1, defaultInferLimits(), func(p *program, first int, idx []int) error {
 		if err := m.fillInputs(p, data, idx); err != nil {
 			return err
 		}
