@@ -17,8 +17,8 @@ import (
 
 // gonumRef recomputes, outside the graph, what Score and Evaluate report.
 // It takes the posterior from m.Encode and the likelihood's mean from
-// m.Decode, reproduces the noise exactly as fillNoise draws it (record r's
-// noise from PCG(seed, r), NormFloat64 in the order sample s, dimension j),
+// m.Decode, reproduces the noise as ScoreOptions.Keys documents it (record
+// r's noise from PCG(seed, r), NormFloat64 in the order sample s, dimension j),
 // and does every density and divergence with gonum.
 type gonumRef struct {
 	logLik [][]float64 // [record][sample] log p(x|z_s)
@@ -47,6 +47,14 @@ func bernoulliRef(x, p []float64) float64 {
 
 func newGonumRef(t *testing.T, m *Model, data *dataset.Set, k int, seed uint64, rm refModel) gonumRef {
 	t.Helper()
+	return newGonumRefKeys(t, m, data, k, seed, nil, rm)
+}
+
+// newGonumRefKeys is newGonumRef with record r's noise drawn from
+// PCG(seed, keys[r]) (the documented scheme of ScoreOptions.Keys); nil keys
+// mean keys[r] = r.
+func newGonumRefKeys(t *testing.T, m *Model, data *dataset.Set, k int, seed uint64, keys []uint64, rm refModel) gonumRef {
+	t.Helper()
 	ctx := context.Background()
 	mean, sigma, err := m.Encode(ctx, data)
 	if err != nil {
@@ -55,7 +63,11 @@ func newGonumRef(t *testing.T, m *Model, data *dataset.Set, k int, seed uint64, 
 	n, d := data.Len(), m.Latent()
 	z := mat.NewDense(n*k, d, nil)
 	for r := 0; r < n; r++ {
-		rng := rand.New(rand.NewPCG(seed, uint64(r)))
+		key := uint64(r)
+		if keys != nil {
+			key = keys[r]
+		}
+		rng := rand.New(rand.NewPCG(seed, key))
 		for s := 0; s < k; s++ {
 			for j := 0; j < d; j++ {
 				eps := rng.NormFloat64()

@@ -18,10 +18,11 @@ import (
 // model keeps at most a handful of compiled graphs per kind.
 const maxInferBatch = 128
 
-// maxSampleRows bounds K times the batch of an importance-sampling program,
-// so that memory stays bounded for large K (the decoder output alone is
-// K*batch*F values).
-const maxSampleRows = 16384
+// maxSampleRows bounds K times the batch of an importance-sampling program
+// run, so that memory stays bounded for any K (the decoder output alone is
+// K*batch*F values) and a cancelled context is noticed within one run of
+// at most this many rows. Score and Evaluate split larger K into chunks.
+const maxSampleRows = 2048
 
 // inferLimits holds the bounds of the inference loops. The methods use
 // defaultInferLimits; tests shrink the bounds and watch the runs.
@@ -60,6 +61,9 @@ func (m *Model) checkData(where string, data *dataset.Set) error {
 	if data.Features() != m.width {
 		return fmt.Errorf("vae.%s: data: %d features per record, model wants %d: %w", where, data.Features(), m.width, layers.ErrInvalidArgument)
 	}
+	if err := m.checkValues(where, data); err != nil {
+		return err
+	}
 	if m.cfg.Classes > 0 {
 		if !data.HasLabels() {
 			return fmt.Errorf("vae.%s: data: conditional model needs labels: %w", where, ErrLabel)
@@ -71,6 +75,58 @@ func (m *Model) checkData(where string, data *dataset.Set) error {
 		}
 	}
 	return nil
+}
+
+// checkValues reports the first value of data that the model cannot
+// represent: for a float32 model a value beyond the float32 range, which
+// would become infinite in the graph and turn its record's results into
+// NaN (and a NaN or infinity, which a dataset.Set never holds). Each record
+// is converted exactly as the graphs receive it. The error names the
+// record and feature and wraps dataset.ErrInvalidData.
+func (m *Model) checkValues(where string, data *dataset.Set) error {
+	f := data.Features()
+	var row32 []float32
+	var row64 []float64
+	var dst any
+	if m.dtype == tensor.Float32 {
+		row32 = make([]float32, f)
+		dst = row32
+	} else {
+		row64 = make([]float64, f)
+		dst = row64
+	}
+	idx := []int{0}
+	for i := 0; i < data.Len(); i++ {
+		idx[0] = i
+		if err := data.Fill(dst, idx); err != nil {
+			return fmt.Errorf("vae.%s: data: %w", where, err)
+		}
+		for j := 0; j < f; j++ {
+			var v float64
+			if row32 != nil {
+				v = float64(row32[j])
+			} else {
+				v = row64[j]
+			}
+			if math.IsNaN(v) || math.IsInf(v, 0) {
+				orig := data.Row(i)[j]
+				return fmt.Errorf("vae.%s: data: record %d, feature %d: value %v %s: %w", where, i, j, orig, m.unrepresentable(orig), dataset.ErrInvalidData)
+			}
+		}
+	}
+	return nil
+}
+
+// unrepresentable says why v cannot enter the model's graphs, or returns
+// "" when it can.
+func (m *Model) unrepresentable(v float64) string {
+	switch {
+	case math.IsNaN(v) || math.IsInf(v, 0):
+		return "is not finite"
+	case m.dtype == tensor.Float32 && math.IsInf(float64(float32(v)), 0):
+		return fmt.Sprintf("is beyond the float32 range (magnitude at most %v)", math.MaxFloat32)
+	}
+	return ""
 }
 
 // checkLabels validates explicit labels for n rows.
@@ -186,16 +242,17 @@ func repeatBlock(dst, src *tensor.Dense, k int) {
 	}
 }
 
-// fillNoise fills the (K*B, D) noise tensor so that the noise of record
-// r (its index within the call) depends only on seed and r. This makes
-// results independent of how records are split into batches, and so
-// identical between serial and concurrent calls.
-func fillNoise(t *tensor.Dense, seed uint64, first, count, b, k, d int) {
+// fillNoise fills the (K*B, D) noise tensor: row s*B+i, the noise of
+// sample s of the record in batch row i, takes the next D standard normals
+// of rngs[i]. Each record's generator is seeded from its key alone (see
+// ScoreOptions.Keys) and drawn sample by sample, so its noise does not
+// depend on batching or chunking. Padding rows, and every row when rngs is
+// nil, get zero noise.
+func fillNoise(t *tensor.Dense, rngs []*rand.Rand, b, k, d int) {
 	t.Zero()
 	f32, _ := t.Data().([]float32)
 	f64, _ := t.Data().([]float64)
-	for i := 0; i < count; i++ {
-		rng := rand.New(rand.NewPCG(seed, uint64(first+i)))
+	for i, rng := range rngs {
 		for s := 0; s < k; s++ {
 			off := (s*b + i) * d
 			for j := 0; j < d; j++ {
@@ -298,8 +355,8 @@ func (m *Model) Decode(ctx context.Context, z mat.Matrix, labels []int) (*mat.De
 		for i := range idx {
 			for j := 0; j < d; j++ {
 				v := z.At(first+i, j)
-				if math.IsNaN(v) || math.IsInf(v, 0) {
-					return fmt.Errorf("vae.Decode: z: row %d, column %d is %v: %w", first+i, j, v, layers.ErrInvalidArgument)
+				if bad := m.unrepresentable(v); bad != "" {
+					return fmt.Errorf("vae.Decode: z: row %d, column %d: value %v %s: %w", first+i, j, v, bad, layers.ErrInvalidArgument)
 				}
 				setAt(p.z, i*d+j, v)
 			}

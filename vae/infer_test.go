@@ -119,3 +119,57 @@ func TestInterpolateAndReconstruct(t *testing.T) {
 		}
 	}
 }
+
+// TestFloat32RangeInput feeds a value that is finite in float64 but beyond
+// the float32 range (1e39 > math.MaxFloat32, about 3.4e38; IEEE 754
+// binary32) to a float32 model. Every inference call must refuse it with
+// an error naming the record and feature, instead of returning NaN. A
+// float64 model takes the same value.
+func TestFloat32RangeInput(t *testing.T) {
+	ctx := context.Background()
+	rows := binaryRows(4, 12, 3)
+	rows[2][5] = 1e39
+	data, err := dataset.FromRows(rows)
+	if err != nil {
+		t.Fatal(err)
+	}
+	m, err := NewMLP(MLPConfig{Input: 12, Hidden: []int{8}, Latent: 3, Seed: 1}) // float32, the default
+	if err != nil {
+		t.Fatal(err)
+	}
+	calls := map[string]func() error{
+		"Score":       func() error { _, err := m.Score(ctx, data, ScoreOptions{K: 3}); return err },
+		"Score mean":  func() error { _, err := m.Score(ctx, data, ScoreOptions{AtPosteriorMean: true}); return err },
+		"Evaluate":    func() error { _, err := m.Evaluate(ctx, data, EvalOptions{K: 2}); return err },
+		"Encode":      func() error { _, _, err := m.Encode(ctx, data); return err },
+		"Reconstruct": func() error { _, err := m.Reconstruct(ctx, data); return err },
+		"Interpolate": func() error { _, err := m.Interpolate(ctx, data, 2, 0, 3); return err },
+	}
+	for name, call := range calls {
+		wantErr(t, name+" with 1e39 in float32", call(), dataset.ErrInvalidData, "record 2", "feature 5", "1e+39", "float32")
+	}
+	z := mat.NewDense(2, 3, []float64{0, 0, 0, 0, 0, -1e39})
+	_, err = m.Decode(ctx, z, nil)
+	wantErr(t, "Decode z of -1e39 in float32", err, layers.ErrInvalidArgument, "row 1", "column 2", "float32")
+
+	// The largest float32 itself is representable, so not refused.
+	rows[2][5] = math.MaxFloat32
+	edge, err := dataset.FromRows(rows)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := m.checkData("Score", edge); err != nil {
+		t.Errorf("math.MaxFloat32 refused: %v", err)
+	}
+
+	m64 := smallMLP(t, 1)
+	scores, err := m64.Score(ctx, data, ScoreOptions{K: 2})
+	if err != nil {
+		t.Fatalf("float64 model: %v", err)
+	}
+	for r, s := range scores {
+		if math.IsNaN(s) {
+			t.Errorf("float64 model: record %d scores NaN", r)
+		}
+	}
+}
