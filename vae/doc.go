@@ -49,9 +49,14 @@
 // Salakhutdinov 2016) and, with K >= 2 samples, the importance-weighted
 // estimate of -log p(x). Encode, Decode, Reconstruct, Generate,
 // Interpolate and Score (a per-record anomaly score) run on pooled
-// inference graphs and are safe for concurrent use; their noise depends
-// only on the seed given and the record's position, so concurrent and
-// serial calls return identical results.
+// inference graphs and are safe for concurrent use. The noise of a record
+// depends only on the seed given and the record's key (its index in the
+// data by default, or ScoreOptions.Keys), so its score does not depend on
+// the other records, batching or concurrency; ScoreOptions.AtPosteriorMean
+// gives a score with no noise at all. Score and Evaluate run any number of
+// samples K in bounded memory, in chunks of at most a few thousand rows,
+// and check the context between chunks. A float32 model refuses values
+// beyond the float32 range with an error naming the record and feature.
 //
 // # Checkpoints
 //

@@ -335,15 +335,11 @@ func (m *Model) forSampled(ctx context.Context, r sampledRun, lim inferLimits, f
 			}
 		}
 		c := &sampledChunk{count: count, logLik: make([]float64, count), kl: make([]float64, count)}
-		// Streaming log-sum-exp of the chunks' log sum_s w_s: top holds
-		// the largest term so far and sum the sum of exp(term - top).
-		var top, sum []float64
+		// Per record, the log-sum-exp over the chunks of log sum_s w_s.
+		var lse []logSumExp
 		if k >= 2 {
 			c.iw = make([]float64, count)
-			top, sum = make([]float64, count), make([]float64, count)
-			for i := range top {
-				top[i] = math.Inf(-1)
-			}
+			lse = make([]logSumExp, count)
 		}
 		for ci := 0; ci < chunks; ci++ {
 			kc := size(ci)
@@ -362,21 +358,12 @@ func (m *Model) forSampled(ctx context.Context, r sampledRun, lim inferLimits, f
 							c.kl[i] += o.kl[i] * float64(kc) / float64(k)
 						}
 					}
-					if top != nil {
+					if lse != nil {
 						if one {
 							c.iw[i] = o.iw[i]
-							continue
-						}
-						// log sum_s w_s over this chunk's samples.
-						t := o.iw[i] + math.Log(float64(kc))
-						switch {
-						case math.IsNaN(t) || math.IsNaN(top[i]):
-							top[i] = math.NaN()
-						case t > top[i]:
-							sum[i] = sum[i]*math.Exp(top[i]-t) + 1
-							top[i] = t
-						case !math.IsInf(t, -1):
-							sum[i] += math.Exp(t - top[i])
+						} else {
+							// log sum_s w_s over this chunk's samples.
+							lse[i].add(o.iw[i] + math.Log(float64(kc)))
 						}
 					}
 				}
@@ -391,13 +378,9 @@ func (m *Model) forSampled(ctx context.Context, r sampledRun, lim inferLimits, f
 				return err
 			}
 		}
-		if top != nil && !one {
+		if lse != nil && !one {
 			for i := range c.iw {
-				// log (1/K) sum_s w_s; -Inf when every weight is 0.
-				c.iw[i] = top[i] + math.Log(sum[i]) - math.Log(float64(k))
-				if math.IsInf(top[i], -1) {
-					c.iw[i] = math.Inf(-1)
-				}
+				c.iw[i] = lse[i].value() - math.Log(float64(k)) // log (1/K) sum_s w_s
 			}
 		}
 		if err := fn(first, c); err != nil {
@@ -445,4 +428,41 @@ func (m *Model) runChunk(key programKey, r sampledRun, lim inferLimits, idx []in
 	}
 	use(o)
 	return nil
+}
+
+// logSumExp accumulates log sum_i exp(t_i) over terms added one at a time,
+// in constant memory and without overflow: top is the largest term so far
+// and sum the sum of exp(t_i - top) (the streaming form of the usual
+// max-shift; common practice). The zero value holds no terms.
+type logSumExp struct {
+	top, sum float64
+	any      bool
+}
+
+func (l *logSumExp) add(t float64) {
+	switch {
+	case !l.any:
+		l.top, l.sum, l.any = t, 1, true
+	case math.IsNaN(t) || math.IsNaN(l.top):
+		l.top = math.NaN()
+	case math.IsInf(t, -1) || math.IsInf(l.top, 1):
+		// exp(t) = 0 adds nothing; an infinite sum stays infinite.
+	case t > l.top:
+		l.sum = l.sum*math.Exp(l.top-t) + 1
+		l.top = t
+	default:
+		l.sum += math.Exp(t - l.top)
+	}
+}
+
+// value returns log sum_i exp(t_i): -Inf for no terms or when every term
+// is -Inf.
+func (l *logSumExp) value() float64 {
+	switch {
+	case !l.any:
+		return math.Inf(-1)
+	case math.IsInf(l.top, 0) || math.IsNaN(l.top):
+		return l.top
+	}
+	return l.top + math.Log(l.sum)
 }
