@@ -8,14 +8,30 @@ import (
 
 	"gorgonia.org/tensor"
 
+	"lowerbound.dev/internal/errs"
 	"lowerbound.dev/layers"
 	"lowerbound.dev/losses"
 	"lowerbound.dev/priors"
 )
 
+// ErrInvalidArgument is wrapped by every error that reports a bad argument
+// or configuration field. It is the SDK's one sentinel for bad arguments:
+// layers.ErrInvalidArgument, dataset.ErrInvalidArgument and
+// schedule.ErrInvalidArgument hold the same value.
+var ErrInvalidArgument = errs.InvalidArgument
+
 // ErrConfig is wrapped by every error that reports a bad model or training
-// configuration. The message names the field.
-var ErrConfig = errors.New("vae: invalid configuration")
+// configuration. The message names the field. A configuration error is a
+// bad argument too: errors.Is(err, ErrInvalidArgument) holds for every
+// error that wraps ErrConfig.
+var ErrConfig error = configSentinel{}
+
+// configSentinel is ErrConfig's type: its own message, and it unwraps to
+// the shared bad-argument sentinel.
+type configSentinel struct{}
+
+func (configSentinel) Error() string { return "vae: invalid configuration" }
+func (configSentinel) Unwrap() error { return errs.InvalidArgument }
 
 // ErrNotConditional is returned by label-taking calls on a model built
 // without classes, and ErrLabel by calls given a label out of range.
@@ -26,6 +42,12 @@ var (
 
 func configError(field, format string, a ...any) error {
 	return fmt.Errorf("%w: %s: %s", ErrConfig, field, fmt.Sprintf(format, a...))
+}
+
+// configWrap reports a bad field whose cause is err, keeping err's chain
+// (errors.Is sees both ErrConfig and whatever err wraps).
+func configWrap(field string, err error) error {
+	return fmt.Errorf("%w: %s: %w", ErrConfig, field, err)
 }
 
 // Config assembles a model from its parts. The encoder, head and decoder are
@@ -125,7 +147,7 @@ func New(cfg Config) (*Model, error) {
 	if cfg.Prior == nil {
 		p, err := priors.NewStandardNormal(latent, cfg.Dtype)
 		if err != nil {
-			return nil, configError("Prior", "%v", err)
+			return nil, configWrap("Prior", err)
 		}
 		cfg.Prior = p
 	}
@@ -170,7 +192,7 @@ func New(cfg Config) (*Model, error) {
 	// Build the smallest inference program once so that shape errors in
 	// the parts surface here, not on first use.
 	if _, err := m.build(programKey{kind: kindEvaluate, batch: 1, k: 1}); err != nil {
-		return nil, fmt.Errorf("%w: the parts do not fit together: %v", ErrConfig, err)
+		return nil, fmt.Errorf("%w: the parts do not fit together: %w", ErrConfig, err)
 	}
 	return m, nil
 }
