@@ -38,7 +38,8 @@
 // through callbacks, can validate, stop early and restore the best
 // parameters, and stops with ErrNonFinite, naming the step and the term,
 // as soon as a loss term is NaN or infinite, before the bad step touches
-// the parameters.
+// the parameters; an update that makes a parameter NaN or infinite is
+// undone, so the parameters are those after the last good step.
 //
 // Same seed, data and configuration give the same parameters bit for bit.
 //

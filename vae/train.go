@@ -18,9 +18,10 @@ import (
 	"lowerbound.dev/vae/schedule"
 )
 
-// ErrNonFinite is returned when a loss term becomes NaN or infinite. The
-// error names the step and the term; the parameters are left as they were
-// after the last good step and no checkpoint is written.
+// ErrNonFinite is returned when a loss term, or a parameter after an
+// optimiser update, becomes NaN or infinite. The error names the step and
+// the term or parameter; the parameters are left as they were after the
+// last good step (a bad update is undone) and no checkpoint is written.
 var ErrNonFinite = errors.New("vae: non-finite value")
 
 // Optimizer selects the update rule.
@@ -290,8 +291,15 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 			if cfg.ClipNorm > 0 {
 				clipGradients(grads, cfg.ClipNorm)
 			}
-			if err := opt.step(weights, grads); err != nil {
+			bad, err := opt.step(weights, grads)
+			if err != nil {
 				return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
+			}
+			if bad >= 0 {
+				// The updater has put every parameter back as it was
+				// after the last good step.
+				return history, fmt.Errorf("vae.Train: epoch %d, step %d: the update of parameter %q is not finite: %w",
+					epoch, step, p.scope.Params()[bad].Name, ErrNonFinite)
 			}
 			// gorgonia adds each run's gradients to what the gradient
 			// tensors hold, so they are cleared for the next step.
