@@ -52,6 +52,12 @@ func configWrap(field string, err error) error {
 
 // Config assembles a model from its parts. The encoder, head and decoder are
 // required; the rest have defaults.
+//
+// The model owns exactly the parameters its parts list in Params(): those
+// are trained, saved, snapshotted and restored. A part that binds any other
+// parameter in a graph is an error (wrapping ErrConfig) naming the part and
+// the parameter, from New, or from the first call that builds a graph
+// binding it.
 type Config struct {
 	// InputShape is the shape of one record: {F} for flat records or
 	// {C, H, W} for images (channels first). Data always arrives flat, F
@@ -91,6 +97,10 @@ type Model struct {
 	width  int // F, values per record
 	latent int
 	params []*layers.Param
+	// owned holds every listed parameter: a graph may bind no other (see
+	// program.owns), so the model trains, saves, snapshots and restores
+	// the same set.
+	owned map[*layers.Param]bool
 
 	mu    sync.Mutex
 	pools map[programKey][]*program
@@ -156,6 +166,7 @@ func New(cfg Config) (*Model, error) {
 	}
 	m := &Model{cfg: cfg, dtype: cfg.Dtype, width: width, latent: latent, pools: map[programKey][]*program{}}
 	seen := map[string]string{}
+	m.owned = map[*layers.Param]bool{}
 	add := func(part string, ps []*layers.Param) error {
 		for _, p := range ps {
 			if p == nil || p.Value == nil {
@@ -165,12 +176,16 @@ func New(cfg Config) (*Model, error) {
 				return configError(part, "parameter %q is %v, model is %v", p.Name, p.Value.Dtype(), cfg.Dtype)
 			}
 			if other, ok := seen[p.Name]; ok {
-				if other == part {
+				if other == part && m.owned[p] {
 					continue // shared within one part (for example a tied layer)
+				}
+				if other == part {
+					return configError(part, "lists two different parameters named %q", p.Name)
 				}
 				return configError(part, "parameter name %q is also used by the %s", p.Name, other)
 			}
 			seen[p.Name] = part
+			m.owned[p] = true
 			m.params = append(m.params, p)
 		}
 		return nil
@@ -192,6 +207,9 @@ func New(cfg Config) (*Model, error) {
 	// Build the smallest inference program once so that shape errors in
 	// the parts surface here, not on first use.
 	if _, err := m.build(programKey{kind: kindEvaluate, batch: 1, k: 1}); err != nil {
+		if errors.Is(err, ErrConfig) {
+			return nil, err
+		}
 		return nil, fmt.Errorf("%w: the parts do not fit together: %w", ErrConfig, err)
 	}
 	return m, nil

@@ -116,6 +116,20 @@ func (m *Model) build(key programKey) (*program, error) {
 	wrap := func(what string, err error) error {
 		return fmt.Errorf("vae: building the %s: %w", what, err)
 	}
+	// owns checks the parameters bound since its last call, by the part
+	// just called: every one must be listed by the model's parts.
+	checked := 0
+	owns := func(part string) error {
+		ps := p.scope.Params()
+		for _, prm := range ps[checked:] {
+			if !m.owned[prm] {
+				return fmt.Errorf("%w: %s binds parameter %q in the graph but no part lists it in Params(): "+
+					"it would be trained but never saved, snapshotted or restored", ErrConfig, part, prm.Name)
+			}
+		}
+		checked = len(ps)
+		return nil
+	}
 
 	var yN, yRepN *G.Node
 	if c > 0 {
@@ -139,6 +153,9 @@ func (m *Model) build(key programKey) (*program, error) {
 		if err != nil {
 			return nil, wrap("decoder", err)
 		}
+		if err := owns("Decoder"); err != nil {
+			return nil, err
+		}
 		os := out.Shape()
 		if os[0] != rows || os.TotalSize() != rows*f {
 			return nil, wrap("decoder", fmt.Errorf("output shape %v, want %d rows of %d values", os, rows, f))
@@ -160,6 +177,9 @@ func (m *Model) build(key programKey) (*program, error) {
 		}
 		if p.mean, err = m.cfg.Likelihood.Mean(p.scope, out); err != nil {
 			return nil, wrap("likelihood mean", err)
+		}
+		if err := owns("Likelihood"); err != nil {
+			return nil, err
 		}
 		return p, m.compile(p, nil)
 	}
@@ -197,11 +217,17 @@ func (m *Model) build(key programKey) (*program, error) {
 	if err != nil {
 		return nil, wrap("encoder", err)
 	}
+	if err := owns("Encoder"); err != nil {
+		return nil, err
+	}
 	if h.Shape().Dims() != 2 || h.Shape()[0] != b {
 		return nil, wrap("encoder", fmt.Errorf("output shape %v, want (%d, H): end the encoder with a Flatten", h.Shape(), b))
 	}
 	if p.mu, p.logVar, err = m.cfg.Head.Forward(p.scope, h); err != nil {
 		return nil, wrap("Gaussian head", err)
+	}
+	if err := owns("Head"); err != nil {
+		return nil, err
 	}
 
 	switch key.kind {
@@ -214,6 +240,9 @@ func (m *Model) build(key programKey) (*program, error) {
 		}
 		if p.mean, err = m.cfg.Likelihood.Mean(p.scope, out); err != nil {
 			return nil, wrap("likelihood mean", err)
+		}
+		if err := owns("Likelihood"); err != nil {
+			return nil, err
 		}
 		return p, m.compile(p, nil)
 	}
@@ -237,6 +266,9 @@ func (m *Model) build(key programKey) (*program, error) {
 	if err != nil {
 		return nil, wrap("likelihood", err)
 	}
+	if err := owns("Likelihood"); err != nil {
+		return nil, err
+	}
 
 	// KL: closed form when the prior has one, else the Monte Carlo
 	// estimate log q(z|x) - log p(z) at the sampled z.
@@ -247,6 +279,9 @@ func (m *Model) build(key programKey) (*program, error) {
 		if p.klDim, err = cf.KL(p.scope, p.mu, p.logVar); err != nil {
 			return nil, wrap("prior KL", err)
 		}
+		if err := owns("Prior"); err != nil {
+			return nil, err
+		}
 		if klSample, err = losses.PerSample(p.klDim); err != nil {
 			return nil, wrap("KL", err)
 		}
@@ -256,6 +291,9 @@ func (m *Model) build(key programKey) (*program, error) {
 	if needDensities {
 		if logPZ, err = m.cfg.Prior.LogProb(p.scope, z); err != nil {
 			return nil, wrap("prior log-density", err)
+		}
+		if err := owns("Prior"); err != nil {
+			return nil, err
 		}
 		muRep, err := m.repeatRows(g, p.mu, k)
 		if err != nil {
