@@ -43,15 +43,17 @@ type program struct {
 
 	// inputs
 	x, xRep, y, yRep, planes, eps, z *tensor.Dense
-	mask, lambda                     *tensor.Dense
-	// scalar inputs, set with G.Let before each run
-	invCount, beta, capTarget, capGamma, lambdaTotal *G.Node
+	mask                             *tensor.Dense
+	// scalar inputs, set with G.Let before each run; lambda is the free
+	// bits floor per group (per dimension, or Lambda*D on the total)
+	invCount, beta, capTarget, capGamma, lambda *G.Node
 
 	// outputs
 	mu, logVar, mean      *G.Node
 	logLik, kl, klDim, iw *G.Node // logLik and kl per record, averaged over K
 	loss, recon, klAvg    *G.Node // training: batch averages
 	klDimAvg              *G.Node // training: (1, D) masked batch average per dimension
+	klTerm                *G.Node // training: the KL term beta weighs (after free bits)
 	paramNodes            []*G.Node
 
 	// reads holds copies of the output nodes' values, taken by gorgonia
@@ -368,12 +370,16 @@ func (m *Model) build(key programKey) (*program, error) {
 	if p.klAvg, err = masked(p.kl); err != nil {
 		return nil, wrap("loss", err)
 	}
+	// The objective is built from the public pieces in losses, the same
+	// functions their tests check: the KL term (floored by free bits when
+	// configured), weighted by beta in the ELBO, and the capacity penalty.
 	klTerm := p.klAvg
 	if key.freeBits {
-		var lambdaN *G.Node
+		p.lambda = m.newScalar(g, "free_bits")
+		perGroup := p.klAvg // without a per-dimension KL: one group, the total
 		if p.klDim != nil {
-			// Free bits per latent dimension (Kingma et al. 2016): the
-			// batch-mean KL of each dimension is floored at lambda.
+			// Free bits per latent dimension (Kingma et al. 2016) on
+			// the masked batch mean of each dimension's KL, (1, D).
 			maskRow, err := G.Reshape(maskN, tensor.Shape{1, b})
 			if err == nil {
 				p.klDimAvg, err = G.Mul(maskRow, p.klDim)
@@ -384,65 +390,27 @@ func (m *Model) build(key programKey) (*program, error) {
 			if err != nil {
 				return nil, wrap("free bits", err)
 			}
-			lambdaN, p.lambda = m.newInput(g, "free_bits", 1, d)
-			floored, err := G.MaxBetween(p.klDimAvg, lambdaN)
-			if err == nil {
-				klTerm, err = G.Sum(floored)
-			}
-			if err != nil {
-				return nil, wrap("free bits", err)
-			}
-		} else {
-			// Without a per-dimension KL the floor applies to the total.
-			p.lambdaTotal = m.newScalar(g, "free_bits")
-			lambdaN = p.lambdaTotal
-			// Gorgonia's MaxBetween fails at run time on scalars (and
-			// its gradient on reshaped ones), so max(kl, lambda) is
-			// written as (kl + lambda + |kl - lambda|) / 2.
-			sum, err := G.Add(p.klAvg, lambdaN)
-			var gap *G.Node
-			if err == nil {
-				gap, err = G.Sub(p.klAvg, lambdaN)
-			}
-			if err == nil {
-				gap, err = G.Abs(gap)
-			}
-			if err == nil {
-				klTerm, err = G.Add(sum, gap)
-			}
-			if err == nil {
-				klTerm, err = G.Mul(klTerm, m.scalar(0.5))
-			}
-			if err != nil {
-				return nil, wrap("free bits", err)
-			}
+			perGroup = p.klDimAvg
+		}
+		if klTerm, err = losses.FreeBits(perGroup, p.lambda); err != nil {
+			return nil, wrap("free bits", err)
 		}
 	}
-	negRecon, err := G.Neg(p.recon)
+	p.klTerm = klTerm
+	elbo, err := losses.ELBO(p.recon, klTerm, betaN)
 	if err != nil {
 		return nil, wrap("loss", err)
 	}
-	weighted, err := G.Mul(klTerm, betaN)
-	if err != nil {
-		return nil, wrap("loss", err)
-	}
-	if p.loss, err = G.Add(negRecon, weighted); err != nil {
+	if p.loss, err = G.Neg(elbo); err != nil {
 		return nil, wrap("loss", err)
 	}
 	if key.capacity {
 		// KL capacity (Burgess et al. 2018): gamma * |KL - C|.
 		p.capTarget = m.newScalar(g, "capacity")
 		p.capGamma = m.newScalar(g, "capacity_gamma")
-		cN, gN := p.capTarget, p.capGamma
-		gap, err := G.Sub(p.klAvg, cN)
+		penalty, err := losses.CapacityPenalty(p.klAvg, p.capTarget, p.capGamma)
 		if err == nil {
-			gap, err = G.Abs(gap)
-		}
-		if err == nil {
-			gap, err = G.Mul(gap, gN)
-		}
-		if err == nil {
-			p.loss, err = G.Add(p.loss, gap)
+			p.loss, err = G.Add(p.loss, penalty)
 		}
 		if err != nil {
 			return nil, wrap("capacity", err)
@@ -469,7 +437,7 @@ func meanOverSamples(v *G.Node, k, b int) (*G.Node, error) {
 
 func (m *Model) compile(p *program, dual []*G.Node) error {
 	p.reads = map[*G.Node]*G.Value{}
-	for _, n := range []*G.Node{p.mu, p.logVar, p.mean, p.logLik, p.kl, p.klDim, p.iw, p.loss, p.recon, p.klAvg} {
+	for _, n := range []*G.Node{p.mu, p.logVar, p.mean, p.logLik, p.kl, p.klDim, p.iw, p.loss, p.recon, p.klAvg, p.klDimAvg, p.klTerm} {
 		if n == nil || p.reads[n] != nil {
 			continue
 		}

@@ -209,12 +209,11 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 		return nil, err
 	}
 	if p.lambda != nil {
-		if err := p.lambda.Memset(castTo(m.dtype, cfg.FreeBits.Lambda)); err != nil {
-			return nil, err
+		lambda := cfg.FreeBits.Lambda
+		if p.klDimAvg == nil {
+			lambda *= float64(m.latent) // one group: the total KL
 		}
-	}
-	if p.lambdaTotal != nil {
-		if err := setScalar(p.lambdaTotal, cfg.FreeBits.Lambda*float64(m.latent)); err != nil {
+		if err := setScalar(p.lambda, lambda); err != nil {
 			return nil, err
 		}
 	}

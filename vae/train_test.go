@@ -127,16 +127,11 @@ func TestRaggedBatchMatchesExactBatch(t *testing.T) {
 				for _, s := range []struct {
 					n *G.Node
 					v float64
-				}{{p.invCount, 1.0 / 3}, {p.beta, 0.8}, {p.capTarget, 1.5}, {p.capGamma, 2}, {p.lambdaTotal, 0.9}} {
+				}{{p.invCount, 1.0 / 3}, {p.beta, 0.8}, {p.capTarget, 1.5}, {p.capGamma, 2}, {p.lambda, 0.3}} {
 					if s.n != nil {
 						if err := setScalar(s.n, s.v); err != nil {
 							t.Fatal(err)
 						}
-					}
-				}
-				if p.lambda != nil {
-					if err := p.lambda.Memset(0.3); err != nil {
-						t.Fatal(err)
 					}
 				}
 				if err := p.run(); err != nil {
