@@ -164,6 +164,8 @@ func TestTrainConfigErrors(t *testing.T) {
 		{"negative beta", TrainConfig{Epochs: 1, Beta: schedule.Constant{Value: -1}}, []string{"Beta"}, ErrInvalidArgument},
 		{"bad warm-up", TrainConfig{Epochs: 1, Beta: schedule.LinearWarmup{Start: 0, End: math.NaN(), Steps: 3}}, []string{"Beta"}, ErrInvalidArgument},
 		{"user beta that fails its own Validate", TrainConfig{Epochs: 1, Beta: failingBeta{errBeta}}, []string{"Beta", "bad schedule"}, errBeta},
+		{"user beta negative at step 0", TrainConfig{Epochs: 1, Beta: constBeta(-1)}, []string{"Beta", "At(0)"}, nil},
+		{"user beta infinite at step 0", TrainConfig{Epochs: 1, Beta: constBeta(math.Inf(1))}, []string{"Beta", "At(0)"}, nil},
 		{"negative clip norm", TrainConfig{Epochs: 1, ClipNorm: -1}, []string{"ClipNorm"}, nil},
 		{"NaN clip norm", TrainConfig{Epochs: 1, ClipNorm: math.NaN()}, []string{"ClipNorm", "NaN"}, nil},
 		{"infinite clip norm", TrainConfig{Epochs: 1, ClipNorm: math.Inf(1)}, []string{"ClipNorm"}, nil},

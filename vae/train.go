@@ -48,7 +48,9 @@ type TrainConfig struct {
 	// and configuration give the same parameters bit for bit.
 	Seed uint64
 	// Beta weighs the KL term at each step; nil means schedule.Constant{1}
-	// (or 0 when Capacity is set).
+	// (or 0 when Capacity is set). A schedule with a Validate method is
+	// validated up front; any schedule's value must be finite and >= 0 at
+	// every step.
 	Beta schedule.Beta
 	// FreeBits, when Lambda > 0, floors the batch-mean KL of every latent
 	// dimension at Lambda nats (Kingma et al. 2016). With a prior that has
@@ -261,6 +263,11 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 				setAt(p.mask, i, 1)
 			}
 			beta = cfg.Beta.At(step)
+			if beta < 0 || math.IsInf(beta, 0) {
+				// A user schedule without Validate; NaN is left to the
+				// non-finite check of the loss.
+				return history, configError("Beta", "At(%d) = %v, want a finite value >= 0", step, beta)
+			}
 			if err := setScalar(p.invCount, 1/float64(len(idx))); err != nil {
 				return history, err
 			}
