@@ -28,6 +28,20 @@
 // beta is a scalar node, so a schedule can change it between steps with
 // G.Let without rebuilding the graph.
 //
+// # The training objective
+//
+// Two batch-level pieces complete the objective the trainer in package vae
+// minimises, -ELBO with the KL term floored and penalised:
+//
+//	FreeBits(klPerDim, lambda)          // sum_j max(lambda, kl_j), Kingma et al. 2016
+//	CapacityPenalty(kl, target, gamma)  // gamma*|kl - C|, Burgess et al. 2018
+//
+// klPerDim is the batch mean of each dimension's KL (a (1, D) row or a (D)
+// vector; a scalar is one group). The trainer builds its loss from ELBO,
+// FreeBits and CapacityPenalty, so the functions tested here are the ones
+// that train; vae/schedule holds their host-side forms (FreeBits.Objective,
+// Capacity.Penalty) and the schedules that set lambda, beta and C.
+//
 // # Closed forms
 //
 // KLStandardNormal is KL(N(mu, exp(logVar)) || N(0, I)) per dimension,

@@ -34,11 +34,14 @@
 // noisier, and negative for some records. Free bits (Kingma et al. 2016)
 // floor each dimension's batch-mean KL; the KL capacity objective (Burgess
 // et al. 2018) adds gamma*|KL - C(step)|; schedules for beta live in
-// vae/schedule. Training takes a context, reports every step and epoch
-// through callbacks, can validate, stop early and restore the best
-// parameters, and stops with ErrNonFinite, naming the step and the term,
-// as soon as a loss term is NaN or infinite, before the bad step touches
-// the parameters.
+// vae/schedule. The loss is built from losses.ELBO, losses.FreeBits and
+// losses.CapacityPenalty, the same public functions a custom trainer uses.
+// Training takes a context, reports every step and epoch through
+// callbacks, can validate, stop early and restore the best parameters, and
+// stops with ErrNonFinite, naming the step and the term, as soon as a loss
+// term is NaN or infinite, before the bad step touches the parameters; an
+// update that makes a parameter NaN or infinite is undone, so the
+// parameters are those after the last good step.
 //
 // Same seed, data and configuration give the same parameters bit for bit.
 //

@@ -54,11 +54,11 @@ func NewMLP(cfg MLPConfig) (*Model, error) {
 	encSizes := append([]int{cfg.Input + cfg.Classes}, cfg.Hidden...)
 	enc, err := layers.NewMLP("encoder", layers.MLPConfig{Sizes: encSizes, Activation: cfg.Activation, Output: orReLU(cfg.Activation)}, opt)
 	if err != nil {
-		return nil, configError("Hidden", "%v", err)
+		return nil, configWrap("Hidden", err)
 	}
 	head, err := layers.NewGaussianHead("head", cfg.Hidden[len(cfg.Hidden)-1], cfg.Latent, opt)
 	if err != nil {
-		return nil, configError("Latent", "%v", err)
+		return nil, configWrap("Latent", err)
 	}
 	decSizes := []int{cfg.Latent + cfg.Classes}
 	hidden := slices.Clone(cfg.Hidden)
@@ -66,12 +66,12 @@ func NewMLP(cfg MLPConfig) (*Model, error) {
 	decSizes = append(append(decSizes, hidden...), cfg.Input)
 	dec, err := layers.NewMLP("decoder", layers.MLPConfig{Sizes: decSizes, Activation: cfg.Activation}, opt)
 	if err != nil {
-		return nil, configError("Hidden", "%v", err)
+		return nil, configWrap("Hidden", err)
 	}
 	prior := cfg.Prior
 	if prior == nil && cfg.MakePrior != nil {
 		if prior, err = cfg.MakePrior(enc, head); err != nil {
-			return nil, configError("MakePrior", "%v", err)
+			return nil, configWrap("MakePrior", err)
 		}
 	}
 	return New(Config{InputShape: []int{cfg.Input}, Encoder: enc, Head: head, Decoder: dec,

@@ -8,14 +8,30 @@ import (
 
 	"gorgonia.org/tensor"
 
+	"lowerbound.dev/internal/errs"
 	"lowerbound.dev/layers"
 	"lowerbound.dev/losses"
 	"lowerbound.dev/priors"
 )
 
+// ErrInvalidArgument is wrapped by every error that reports a bad argument
+// or configuration field. It is the SDK's one sentinel for bad arguments:
+// layers.ErrInvalidArgument, dataset.ErrInvalidArgument and
+// schedule.ErrInvalidArgument hold the same value.
+var ErrInvalidArgument = errs.InvalidArgument
+
 // ErrConfig is wrapped by every error that reports a bad model or training
-// configuration. The message names the field.
-var ErrConfig = errors.New("vae: invalid configuration")
+// configuration. The message names the field. A configuration error is a
+// bad argument too: errors.Is(err, ErrInvalidArgument) holds for every
+// error that wraps ErrConfig.
+var ErrConfig error = configSentinel{}
+
+// configSentinel is ErrConfig's type: its own message, and it unwraps to
+// the shared bad-argument sentinel.
+type configSentinel struct{}
+
+func (configSentinel) Error() string { return "vae: invalid configuration" }
+func (configSentinel) Unwrap() error { return errs.InvalidArgument }
 
 // ErrNotConditional is returned by label-taking calls on a model built
 // without classes, and ErrLabel by calls given a label out of range.
@@ -28,8 +44,20 @@ func configError(field, format string, a ...any) error {
 	return fmt.Errorf("%w: %s: %s", ErrConfig, field, fmt.Sprintf(format, a...))
 }
 
+// configWrap reports a bad field whose cause is err, keeping err's chain
+// (errors.Is sees both ErrConfig and whatever err wraps).
+func configWrap(field string, err error) error {
+	return fmt.Errorf("%w: %s: %w", ErrConfig, field, err)
+}
+
 // Config assembles a model from its parts. The encoder, head and decoder are
 // required; the rest have defaults.
+//
+// The model owns exactly the parameters its parts list in Params(): those
+// are trained, saved, snapshotted and restored. A part that binds any other
+// parameter in a graph is an error (wrapping ErrConfig) naming the part and
+// the parameter, from New, or from the first call that builds a graph
+// binding it.
 type Config struct {
 	// InputShape is the shape of one record: {F} for flat records or
 	// {C, H, W} for images (channels first). Data always arrives flat, F
@@ -69,6 +97,10 @@ type Model struct {
 	width  int // F, values per record
 	latent int
 	params []*layers.Param
+	// owned holds every listed parameter: a graph may bind no other (see
+	// program.owns), so the model trains, saves, snapshots and restores
+	// the same set.
+	owned map[*layers.Param]bool
 
 	mu    sync.Mutex
 	pools map[programKey][]*program
@@ -125,7 +157,7 @@ func New(cfg Config) (*Model, error) {
 	if cfg.Prior == nil {
 		p, err := priors.NewStandardNormal(latent, cfg.Dtype)
 		if err != nil {
-			return nil, configError("Prior", "%v", err)
+			return nil, configWrap("Prior", err)
 		}
 		cfg.Prior = p
 	}
@@ -134,6 +166,7 @@ func New(cfg Config) (*Model, error) {
 	}
 	m := &Model{cfg: cfg, dtype: cfg.Dtype, width: width, latent: latent, pools: map[programKey][]*program{}}
 	seen := map[string]string{}
+	m.owned = map[*layers.Param]bool{}
 	add := func(part string, ps []*layers.Param) error {
 		for _, p := range ps {
 			if p == nil || p.Value == nil {
@@ -143,12 +176,16 @@ func New(cfg Config) (*Model, error) {
 				return configError(part, "parameter %q is %v, model is %v", p.Name, p.Value.Dtype(), cfg.Dtype)
 			}
 			if other, ok := seen[p.Name]; ok {
-				if other == part {
+				if other == part && m.owned[p] {
 					continue // shared within one part (for example a tied layer)
+				}
+				if other == part {
+					return configError(part, "lists two different parameters named %q", p.Name)
 				}
 				return configError(part, "parameter name %q is also used by the %s", p.Name, other)
 			}
 			seen[p.Name] = part
+			m.owned[p] = true
 			m.params = append(m.params, p)
 		}
 		return nil
@@ -170,7 +207,10 @@ func New(cfg Config) (*Model, error) {
 	// Build the smallest inference program once so that shape errors in
 	// the parts surface here, not on first use.
 	if _, err := m.build(programKey{kind: kindEvaluate, batch: 1, k: 1}); err != nil {
-		return nil, fmt.Errorf("%w: the parts do not fit together: %v", ErrConfig, err)
+		if errors.Is(err, ErrConfig) {
+			return nil, err
+		}
+		return nil, fmt.Errorf("%w: the parts do not fit together: %w", ErrConfig, err)
 	}
 	return m, nil
 }

@@ -46,8 +46,8 @@ func optimiserCase(t *testing.T, ours updater, theirs G.Solver) float64 {
 			gt := tensor.New(tensor.WithShape(s...), tensor.WithBacking(append([]float64(nil), gv...)))
 			vgs = append(vgs, valueGrad{v: ref[i], g: gt})
 		}
-		if err := ours.step(mine, grads); err != nil {
-			t.Fatal(err)
+		if bad, err := ours.step(mine, grads); err != nil || bad >= 0 {
+			t.Fatalf("step: parameter %d not finite, error %v", bad, err)
 		}
 		if err := theirs.Step(vgs); err != nil {
 			t.Fatal(err)
@@ -87,5 +87,74 @@ func TestSGDMatchesGorgonia(t *testing.T) {
 	}
 	if w := optimiserCase(t, &sgd{lr: 0.05, momentum: 0.9}, G.NewMomentum(G.WithLearnRate(0.05), G.WithMomentum(0.9))); w > 1e-12 {
 		t.Errorf("SGD with momentum differs from gorgonia's by up to %v", w)
+	}
+}
+
+// TestNonFiniteUpdateIsUndone: an update that overflows in the last of
+// three parameters is reported with that parameter's index, and every
+// parameter (the two updated before it included) holds its value from
+// before the step, bit for bit. float64 SGD with learning rate 1e300: a
+// gradient of 1e-3 moves a weight by 1e297 (finite), one of 1e10 by 1e310,
+// above math.MaxFloat64 (IEEE 754 binary64: about 1.8e308).
+func TestNonFiniteUpdateIsUndone(t *testing.T) {
+	mk := func(vals ...float64) *tensor.Dense {
+		return tensor.New(tensor.WithShape(len(vals)), tensor.WithBacking(vals))
+	}
+	for _, opt := range []updater{&sgd{lr: 1e300}, &sgd{lr: 1e300, momentum: 0.5}} {
+		params := []*tensor.Dense{mk(1, -2, 3), mk(0.5), mk(4, 5)}
+		before := make([][]float64, len(params))
+		for i, p := range params {
+			before[i] = append([]float64(nil), p.Data().([]float64)...)
+		}
+		// A good step first, so the shadow buffers hold older values
+		// than the ones to restore.
+		small := []*tensor.Dense{mk(0, 0, 0), mk(0), mk(0, 0)}
+		if bad, err := opt.step(params, small); err != nil || bad != -1 {
+			t.Fatalf("a zero gradient: bad %d, error %v", bad, err)
+		}
+		grads := []*tensor.Dense{mk(1e-3, -1e-3, 0), mk(1e-3), mk(1e-3, 1e10)}
+		bad, err := opt.step(params, grads)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if bad != 2 {
+			t.Errorf("%+v: bad parameter %d, want 2", opt, bad)
+		}
+		for i, p := range params {
+			for j, v := range p.Data().([]float64) {
+				if math.Float64bits(v) != math.Float64bits(before[i][j]) {
+					t.Errorf("%+v: parameter %d[%d] is %v after the undone step, was %v", opt, i, j, v, before[i][j])
+				}
+			}
+		}
+	}
+}
+
+// benchParams returns float32 parameters and gradients of the sizes of the
+// standard MLP VAE (784-400-20: about 650 thousand values).
+func benchParams() (params, grads []*tensor.Dense) {
+	rng := rand.New(rand.NewPCG(1, 1))
+	for _, s := range [][]int{{784, 400}, {1, 400}, {400, 20}, {1, 20}, {400, 20}, {1, 20}, {20, 400}, {1, 400}, {400, 784}, {1, 784}} {
+		n := s[0] * s[1]
+		w, g := make([]float32, n), make([]float32, n)
+		for i := range w {
+			w[i], g[i] = float32(rng.NormFloat64()), float32(rng.NormFloat64())
+		}
+		params = append(params, tensor.New(tensor.WithShape(s...), tensor.WithBacking(w)))
+		grads = append(grads, tensor.New(tensor.WithShape(s...), tensor.WithBacking(g)))
+	}
+	return params, grads
+}
+
+// BenchmarkAdamStep is one Adam step over the standard model's parameters,
+// finiteness check and previous-value copy included.
+func BenchmarkAdamStep(b *testing.B) {
+	params, grads := benchParams()
+	opt := &adam{lr: 1e-6, beta1: 0.9, beta2: 0.999, eps: 1e-8}
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		if bad, err := opt.step(params, grads); err != nil || bad >= 0 {
+			b.Fatal(bad, err)
+		}
 	}
 }

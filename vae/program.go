@@ -43,15 +43,17 @@ type program struct {
 
 	// inputs
 	x, xRep, y, yRep, planes, eps, z *tensor.Dense
-	mask, lambda                     *tensor.Dense
-	// scalar inputs, set with G.Let before each run
-	invCount, beta, capTarget, capGamma, lambdaTotal *G.Node
+	mask                             *tensor.Dense
+	// scalar inputs, set with G.Let before each run; lambda is the free
+	// bits floor per group (per dimension, or Lambda*D on the total)
+	invCount, beta, capTarget, capGamma, lambda *G.Node
 
 	// outputs
 	mu, logVar, mean      *G.Node
 	logLik, kl, klDim, iw *G.Node // logLik and kl per record, averaged over K
 	loss, recon, klAvg    *G.Node // training: batch averages
 	klDimAvg              *G.Node // training: (1, D) masked batch average per dimension
+	klTerm                *G.Node // training: the KL term beta weighs (after free bits)
 	paramNodes            []*G.Node
 
 	// reads holds copies of the output nodes' values, taken by gorgonia
@@ -116,6 +118,20 @@ func (m *Model) build(key programKey) (*program, error) {
 	wrap := func(what string, err error) error {
 		return fmt.Errorf("vae: building the %s: %w", what, err)
 	}
+	// owns checks the parameters bound since its last call, by the part
+	// just called: every one must be listed by the model's parts.
+	checked := 0
+	owns := func(part string) error {
+		ps := p.scope.Params()
+		for _, prm := range ps[checked:] {
+			if !m.owned[prm] {
+				return fmt.Errorf("%w: %s binds parameter %q in the graph but no part lists it in Params(): "+
+					"it would be trained but never saved, snapshotted or restored", ErrConfig, part, prm.Name)
+			}
+		}
+		checked = len(ps)
+		return nil
+	}
 
 	var yN, yRepN *G.Node
 	if c > 0 {
@@ -139,6 +155,9 @@ func (m *Model) build(key programKey) (*program, error) {
 		if err != nil {
 			return nil, wrap("decoder", err)
 		}
+		if err := owns("Decoder"); err != nil {
+			return nil, err
+		}
 		os := out.Shape()
 		if os[0] != rows || os.TotalSize() != rows*f {
 			return nil, wrap("decoder", fmt.Errorf("output shape %v, want %d rows of %d values", os, rows, f))
@@ -160,6 +179,9 @@ func (m *Model) build(key programKey) (*program, error) {
 		}
 		if p.mean, err = m.cfg.Likelihood.Mean(p.scope, out); err != nil {
 			return nil, wrap("likelihood mean", err)
+		}
+		if err := owns("Likelihood"); err != nil {
+			return nil, err
 		}
 		return p, m.compile(p, nil)
 	}
@@ -197,11 +219,17 @@ func (m *Model) build(key programKey) (*program, error) {
 	if err != nil {
 		return nil, wrap("encoder", err)
 	}
+	if err := owns("Encoder"); err != nil {
+		return nil, err
+	}
 	if h.Shape().Dims() != 2 || h.Shape()[0] != b {
 		return nil, wrap("encoder", fmt.Errorf("output shape %v, want (%d, H): end the encoder with a Flatten", h.Shape(), b))
 	}
 	if p.mu, p.logVar, err = m.cfg.Head.Forward(p.scope, h); err != nil {
 		return nil, wrap("Gaussian head", err)
+	}
+	if err := owns("Head"); err != nil {
+		return nil, err
 	}
 
 	switch key.kind {
@@ -214,6 +242,9 @@ func (m *Model) build(key programKey) (*program, error) {
 		}
 		if p.mean, err = m.cfg.Likelihood.Mean(p.scope, out); err != nil {
 			return nil, wrap("likelihood mean", err)
+		}
+		if err := owns("Likelihood"); err != nil {
+			return nil, err
 		}
 		return p, m.compile(p, nil)
 	}
@@ -237,6 +268,9 @@ func (m *Model) build(key programKey) (*program, error) {
 	if err != nil {
 		return nil, wrap("likelihood", err)
 	}
+	if err := owns("Likelihood"); err != nil {
+		return nil, err
+	}
 
 	// KL: closed form when the prior has one, else the Monte Carlo
 	// estimate log q(z|x) - log p(z) at the sampled z.
@@ -247,6 +281,9 @@ func (m *Model) build(key programKey) (*program, error) {
 		if p.klDim, err = cf.KL(p.scope, p.mu, p.logVar); err != nil {
 			return nil, wrap("prior KL", err)
 		}
+		if err := owns("Prior"); err != nil {
+			return nil, err
+		}
 		if klSample, err = losses.PerSample(p.klDim); err != nil {
 			return nil, wrap("KL", err)
 		}
@@ -256,6 +293,9 @@ func (m *Model) build(key programKey) (*program, error) {
 	if needDensities {
 		if logPZ, err = m.cfg.Prior.LogProb(p.scope, z); err != nil {
 			return nil, wrap("prior log-density", err)
+		}
+		if err := owns("Prior"); err != nil {
+			return nil, err
 		}
 		muRep, err := m.repeatRows(g, p.mu, k)
 		if err != nil {
@@ -330,12 +370,16 @@ func (m *Model) build(key programKey) (*program, error) {
 	if p.klAvg, err = masked(p.kl); err != nil {
 		return nil, wrap("loss", err)
 	}
+	// The objective is built from the public pieces in losses, the same
+	// functions their tests check: the KL term (floored by free bits when
+	// configured), weighted by beta in the ELBO, and the capacity penalty.
 	klTerm := p.klAvg
 	if key.freeBits {
-		var lambdaN *G.Node
+		p.lambda = m.newScalar(g, "free_bits")
+		perGroup := p.klAvg // without a per-dimension KL: one group, the total
 		if p.klDim != nil {
-			// Free bits per latent dimension (Kingma et al. 2016): the
-			// batch-mean KL of each dimension is floored at lambda.
+			// Free bits per latent dimension (Kingma et al. 2016) on
+			// the masked batch mean of each dimension's KL, (1, D).
 			maskRow, err := G.Reshape(maskN, tensor.Shape{1, b})
 			if err == nil {
 				p.klDimAvg, err = G.Mul(maskRow, p.klDim)
@@ -346,65 +390,27 @@ func (m *Model) build(key programKey) (*program, error) {
 			if err != nil {
 				return nil, wrap("free bits", err)
 			}
-			lambdaN, p.lambda = m.newInput(g, "free_bits", 1, d)
-			floored, err := G.MaxBetween(p.klDimAvg, lambdaN)
-			if err == nil {
-				klTerm, err = G.Sum(floored)
-			}
-			if err != nil {
-				return nil, wrap("free bits", err)
-			}
-		} else {
-			// Without a per-dimension KL the floor applies to the total.
-			p.lambdaTotal = m.newScalar(g, "free_bits")
-			lambdaN = p.lambdaTotal
-			// Gorgonia's MaxBetween fails at run time on scalars (and
-			// its gradient on reshaped ones), so max(kl, lambda) is
-			// written as (kl + lambda + |kl - lambda|) / 2.
-			sum, err := G.Add(p.klAvg, lambdaN)
-			var gap *G.Node
-			if err == nil {
-				gap, err = G.Sub(p.klAvg, lambdaN)
-			}
-			if err == nil {
-				gap, err = G.Abs(gap)
-			}
-			if err == nil {
-				klTerm, err = G.Add(sum, gap)
-			}
-			if err == nil {
-				klTerm, err = G.Mul(klTerm, m.scalar(0.5))
-			}
-			if err != nil {
-				return nil, wrap("free bits", err)
-			}
+			perGroup = p.klDimAvg
+		}
+		if klTerm, err = losses.FreeBits(perGroup, p.lambda); err != nil {
+			return nil, wrap("free bits", err)
 		}
 	}
-	negRecon, err := G.Neg(p.recon)
+	p.klTerm = klTerm
+	elbo, err := losses.ELBO(p.recon, klTerm, betaN)
 	if err != nil {
 		return nil, wrap("loss", err)
 	}
-	weighted, err := G.Mul(klTerm, betaN)
-	if err != nil {
-		return nil, wrap("loss", err)
-	}
-	if p.loss, err = G.Add(negRecon, weighted); err != nil {
+	if p.loss, err = G.Neg(elbo); err != nil {
 		return nil, wrap("loss", err)
 	}
 	if key.capacity {
 		// KL capacity (Burgess et al. 2018): gamma * |KL - C|.
 		p.capTarget = m.newScalar(g, "capacity")
 		p.capGamma = m.newScalar(g, "capacity_gamma")
-		cN, gN := p.capTarget, p.capGamma
-		gap, err := G.Sub(p.klAvg, cN)
+		penalty, err := losses.CapacityPenalty(p.klAvg, p.capTarget, p.capGamma)
 		if err == nil {
-			gap, err = G.Abs(gap)
-		}
-		if err == nil {
-			gap, err = G.Mul(gap, gN)
-		}
-		if err == nil {
-			p.loss, err = G.Add(p.loss, gap)
+			p.loss, err = G.Add(p.loss, penalty)
 		}
 		if err != nil {
 			return nil, wrap("capacity", err)
@@ -431,7 +437,7 @@ func meanOverSamples(v *G.Node, k, b int) (*G.Node, error) {
 
 func (m *Model) compile(p *program, dual []*G.Node) error {
 	p.reads = map[*G.Node]*G.Value{}
-	for _, n := range []*G.Node{p.mu, p.logVar, p.mean, p.logLik, p.kl, p.klDim, p.iw, p.loss, p.recon, p.klAvg} {
+	for _, n := range []*G.Node{p.mu, p.logVar, p.mean, p.logLik, p.kl, p.klDim, p.iw, p.loss, p.recon, p.klAvg, p.klDimAvg, p.klTerm} {
 		if n == nil || p.reads[n] != nil {
 			continue
 		}

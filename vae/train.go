@@ -6,6 +6,8 @@ import (
 	"fmt"
 	"math"
 	"math/rand/v2"
+	"os"
+	"path/filepath"
 	"time"
 
 	G "gorgonia.org/gorgonia"
@@ -16,9 +18,10 @@ import (
 	"lowerbound.dev/vae/schedule"
 )
 
-// ErrNonFinite is returned when a loss term becomes NaN or infinite. The
-// error names the step and the term; the parameters are left as they were
-// after the last good step and no checkpoint is written.
+// ErrNonFinite is returned when a loss term, or a parameter after an
+// optimiser update, becomes NaN or infinite. The error names the step and
+// the term or parameter; the parameters are left as they were after the
+// last good step (a bad update is undone) and no checkpoint is written.
 var ErrNonFinite = errors.New("vae: non-finite value")
 
 // Optimizer selects the update rule.
@@ -40,12 +43,14 @@ type TrainConfig struct {
 	BatchSize int       // records per step; 0 means 100
 	Optimizer Optimizer // Adam (default) or SGD
 	LearnRate float64   // 0 means 1e-3
-	Momentum  float64   // SGD only
+	Momentum  float64   // SGD only, in [0, 1); must be 0 with Adam
 	// Seed drives shuffling and the sampler's noise: the same seed, data
 	// and configuration give the same parameters bit for bit.
 	Seed uint64
 	// Beta weighs the KL term at each step; nil means schedule.Constant{1}
-	// (or 0 when Capacity is set).
+	// (or 0 when Capacity is set). A schedule with a Validate method is
+	// validated up front; any schedule's value must be finite and >= 0 at
+	// every step.
 	Beta schedule.Beta
 	// FreeBits, when Lambda > 0, floors the batch-mean KL of every latent
 	// dimension at Lambda nats (Kingma et al. 2016). With a prior that has
@@ -56,10 +61,10 @@ type TrainConfig struct {
 	// 2018).
 	Capacity schedule.Capacity
 	// ClipNorm > 0 rescales the gradient of all parameters together when
-	// its L2 norm exceeds ClipNorm.
+	// its L2 norm exceeds ClipNorm; 0 means no clipping. It must be finite.
 	ClipNorm float64
 	// Validation data, evaluated (negative ELBO, one sample, fixed seed)
-	// after each epoch.
+	// after each epoch. If set, it must hold at least one record.
 	Validation *dataset.Set
 	// Patience > 0 stops training after that many epochs without a better
 	// validation negative ELBO. Needs Validation.
@@ -69,7 +74,8 @@ type TrainConfig struct {
 	RestoreBest bool
 	// CheckpointPath, if set, is written atomically after every epoch that
 	// improves the validation negative ELBO (every epoch without
-	// Validation). A failed run leaves the last good file as it was.
+	// Validation). A failed run leaves the last good file as it was. Its
+	// directory must exist when Train starts.
 	CheckpointPath string
 	// OnStep, if set, is called after every optimiser step.
 	OnStep func(StepInfo)
@@ -122,14 +128,18 @@ func (c *TrainConfig) validate(m *Model, data *dataset.Set) error {
 	if c.Optimizer != Adam && c.Optimizer != SGD {
 		return configError("Optimizer", "unknown value %d", c.Optimizer)
 	}
-	if c.Momentum < 0 || c.Momentum >= 1 {
+	// Written so that NaN fails every comparison and is rejected.
+	if !(c.Momentum >= 0 && c.Momentum < 1) {
 		return configError("Momentum", "%v, want 0 <= momentum < 1", c.Momentum)
 	}
+	if c.Momentum != 0 && c.Optimizer != SGD {
+		return configError("Momentum", "%v is for SGD only; Adam keeps its own moments", c.Momentum)
+	}
 	if err := c.FreeBits.Validate(); err != nil {
-		return fmt.Errorf("%w: FreeBits: %v", ErrConfig, err)
+		return configWrap("FreeBits", err)
 	}
 	if err := c.Capacity.Validate(); err != nil {
-		return fmt.Errorf("%w: Capacity: %v", ErrConfig, err)
+		return configWrap("Capacity", err)
 	}
 	if c.Beta == nil {
 		if c.Capacity.Gamma > 0 {
@@ -140,17 +150,30 @@ func (c *TrainConfig) validate(m *Model, data *dataset.Set) error {
 	}
 	if v, ok := c.Beta.(interface{ Validate() error }); ok {
 		if err := v.Validate(); err != nil {
-			return fmt.Errorf("%w: Beta: %v", ErrConfig, err)
+			return configWrap("Beta", err)
 		}
 	}
-	if c.ClipNorm < 0 {
-		return configError("ClipNorm", "%v, want >= 0", c.ClipNorm)
+	if !(c.ClipNorm >= 0) || math.IsInf(c.ClipNorm, 0) {
+		return configError("ClipNorm", "%v, want a finite value >= 0 (0 turns clipping off)", c.ClipNorm)
 	}
 	if (c.Patience > 0 || c.RestoreBest) && c.Validation == nil {
 		return configError("Validation", "Patience and RestoreBest need validation data")
 	}
 	if c.Patience < 0 {
 		return configError("Patience", "%d, want >= 0", c.Patience)
+	}
+	if c.CheckpointPath != "" {
+		// The file is written after the first epoch; a directory that
+		// is missing would only show then.
+		dir := filepath.Dir(c.CheckpointPath)
+		if st, err := os.Stat(dir); err != nil {
+			return configWrap("CheckpointPath", err)
+		} else if !st.IsDir() {
+			return configError("CheckpointPath", "%s is not a directory", dir)
+		}
+		if st, err := os.Stat(c.CheckpointPath); err == nil && st.IsDir() {
+			return configError("CheckpointPath", "%s is a directory", c.CheckpointPath)
+		}
 	}
 	if err := m.checkData("Train", data); err != nil {
 		return err
@@ -161,6 +184,9 @@ func (c *TrainConfig) validate(m *Model, data *dataset.Set) error {
 	if c.Validation != nil {
 		if err := m.checkData("Train", c.Validation); err != nil {
 			return fmt.Errorf("validation: %w", err)
+		}
+		if c.Validation.Len() == 0 {
+			return configError("Validation", "no records")
 		}
 	}
 	return nil
@@ -185,12 +211,11 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 		return nil, err
 	}
 	if p.lambda != nil {
-		if err := p.lambda.Memset(castTo(m.dtype, cfg.FreeBits.Lambda)); err != nil {
-			return nil, err
+		lambda := cfg.FreeBits.Lambda
+		if p.klDimAvg == nil {
+			lambda *= float64(m.latent) // one group: the total KL
 		}
-	}
-	if p.lambdaTotal != nil {
-		if err := setScalar(p.lambdaTotal, cfg.FreeBits.Lambda*float64(m.latent)); err != nil {
+		if err := setScalar(p.lambda, lambda); err != nil {
 			return nil, err
 		}
 	}
@@ -238,6 +263,11 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 				setAt(p.mask, i, 1)
 			}
 			beta = cfg.Beta.At(step)
+			if beta < 0 || math.IsInf(beta, 0) {
+				// A user schedule without Validate; NaN is left to the
+				// non-finite check of the loss.
+				return history, configError("Beta", "At(%d) = %v, want a finite value >= 0", step, beta)
+			}
 			if err := setScalar(p.invCount, 1/float64(len(idx))); err != nil {
 				return history, err
 			}
@@ -267,8 +297,15 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 			if cfg.ClipNorm > 0 {
 				clipGradients(grads, cfg.ClipNorm)
 			}
-			if err := opt.step(weights, grads); err != nil {
+			bad, err := opt.step(weights, grads)
+			if err != nil {
 				return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
+			}
+			if bad >= 0 {
+				// The updater has put every parameter back as it was
+				// after the last good step.
+				return history, fmt.Errorf("vae.Train: epoch %d, step %d: the update of parameter %q is not finite: %w",
+					epoch, step, p.scope.Params()[bad].Name, ErrNonFinite)
 			}
 			// gorgonia adds each run's gradients to what the gradient
 			// tensors hold, so they are cleared for the next step.

@@ -6,11 +6,14 @@ import (
 	"math"
 	"math/rand/v2"
 	"os"
+	"strings"
 	"testing"
 
 	"gonum.org/v1/gonum/floats"
 	G "gorgonia.org/gorgonia"
+	"gorgonia.org/tensor"
 
+	"lowerbound.dev/losses"
 	"lowerbound.dev/vae/schedule"
 )
 
@@ -124,16 +127,11 @@ func TestRaggedBatchMatchesExactBatch(t *testing.T) {
 				for _, s := range []struct {
 					n *G.Node
 					v float64
-				}{{p.invCount, 1.0 / 3}, {p.beta, 0.8}, {p.capTarget, 1.5}, {p.capGamma, 2}, {p.lambdaTotal, 0.9}} {
+				}{{p.invCount, 1.0 / 3}, {p.beta, 0.8}, {p.capTarget, 1.5}, {p.capGamma, 2}, {p.lambda, 0.3}} {
 					if s.n != nil {
 						if err := setScalar(s.n, s.v); err != nil {
 							t.Fatal(err)
 						}
-					}
-				}
-				if p.lambda != nil {
-					if err := p.lambda.Memset(0.3); err != nil {
-						t.Fatal(err)
 					}
 				}
 				if err := p.run(); err != nil {
@@ -642,5 +640,78 @@ func TestRestoreBestAndPatience(t *testing.T) {
 				t.Errorf("patience %d, epoch %d: validation %v, the full run had %v", patience, i+1, h.Validation, full[i].Validation)
 			}
 		}
+	}
+}
+
+// TestNonFiniteUpdateRestoresParameters: a learning rate so large that the
+// update itself overflows (the loss before it is finite) stops training
+// with ErrNonFinite naming a parameter, and every parameter is finite and
+// equal, bit for bit, to its value after the last good step: the same run
+// cancelled right after that step (or the untrained model when the very
+// first update fails). float32 Adam with 1e39 (above math.MaxFloat32,
+// about 3.4e38, IEEE 754 binary32) and float64 SGD with 1e300.
+func TestNonFiniteUpdateRestoresParameters(t *testing.T) {
+	data := binarySet(t, 8, 12, 4)
+	// A Gaussian likelihood with sigma 1e-5 on 0/1 data has gradients of
+	// order 1e10 (the score (x - mean)/sigma^2), so SGD's first update of
+	// 1e300 times that overflows; with the Bernoulli likelihood the first
+	// update stays finite and the loss of the second step is what fails.
+	cases := []struct {
+		name       string
+		dtype      tensor.Dtype
+		opt        Optimizer
+		lr         float64
+		likelihood losses.Likelihood
+		wantUpdate bool // the failure is in the update, not the loss
+	}{
+		{"float32 Adam 1e39", tensor.Float32, Adam, 1e39, nil, true},
+		{"float64 SGD 1e300", tensor.Float64, SGD, 1e300, losses.Gaussian{Sigma: 1e-5}, true},
+		{"float64 SGD 1e300, Bernoulli", tensor.Float64, SGD, 1e300, nil, false},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			model := func() *Model {
+				m, err := NewMLP(MLPConfig{Input: 12, Hidden: []int{8}, Latent: 3, Dtype: tc.dtype, Seed: 5, Likelihood: tc.likelihood})
+				if err != nil {
+					t.Fatal(err)
+				}
+				return m
+			}
+			cfg := TrainConfig{Epochs: 3, BatchSize: 4, Optimizer: tc.opt, LearnRate: tc.lr, Seed: 9}
+			m := model()
+			last := -1
+			cfg.OnStep = func(s StepInfo) { last = s.Step }
+			_, err := m.Train(context.Background(), data, cfg)
+			if !errors.Is(err, ErrNonFinite) {
+				t.Fatalf("Train: %v, want ErrNonFinite", err)
+			}
+			t.Logf("stopped after %d good steps: %v", last+1, err)
+			if got := strings.Contains(err.Error(), "update of parameter"); got != tc.wantUpdate {
+				t.Errorf("fixture: error %q; want a failed update: %v", err, tc.wantUpdate)
+			}
+			for _, p := range m.Params() {
+				for j, v := range denseFloats(p.Value) {
+					if math.IsNaN(v) || math.IsInf(v, 0) {
+						t.Fatalf("parameter %s[%d] is %v after ErrNonFinite", p.Name, j, v)
+					}
+				}
+			}
+			ref := model()
+			if last >= 0 {
+				ctx, cancel := context.WithCancel(context.Background())
+				defer cancel()
+				cfg.OnStep = func(s StepInfo) {
+					if s.Step == last {
+						cancel()
+					}
+				}
+				if _, err := ref.Train(ctx, data, cfg); !errors.Is(err, context.Canceled) {
+					t.Fatalf("reference run: %v, want context.Canceled", err)
+				}
+			}
+			if ok, name := sameBits(m, paramBits(m), paramBits(ref)); !ok {
+				t.Errorf("parameter %s differs from its value after the last good step %d", name, last)
+			}
+		})
 	}
 }

@@ -151,7 +151,8 @@ func (c Cyclical) Validate() error {
 // so a group whose average KL is below lambda costs the constant lambda and
 // gets no gradient pushing it further towards the prior. This package uses
 // one group per latent dimension. Lambda is in nats (natural logarithms),
-// per dimension.
+// per dimension. The trainer applies it in the graph with losses.FreeBits,
+// which agrees with Objective.
 type FreeBits struct {
 	Lambda float64 `json:"lambda"`
 }
@@ -218,7 +219,8 @@ func (c Capacity) Target(step int) float64 {
 }
 
 // Penalty returns Gamma * |kl - Target(step)|, the term subtracted from the
-// reconstruction log-likelihood. kl is the KL per record (summed over latent
+// reconstruction log-likelihood (in the trainer's graph:
+// losses.CapacityPenalty). kl is the KL per record (summed over latent
 // dimensions, averaged over the minibatch).
 func (c Capacity) Penalty(kl float64, step int) float64 {
 	return c.Gamma * math.Abs(kl-c.Target(step))
