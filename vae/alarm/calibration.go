@@ -83,7 +83,8 @@ func RecordsNeeded(alpha float64) (int, error) {
 // it can travel with a model's checkpoint (Put, Get).
 //
 // A Calibration never changes after it is built and is safe for concurrent
-// use.
+// use. The zero Calibration holds no scores: its methods that return an
+// error report ErrBadCalibration, and its threshold means nothing.
 type Calibration struct {
 	alpha     float64
 	k         int       // 1-based rank of the threshold in scores
@@ -182,6 +183,9 @@ func (c *Calibration) pvalue(s float64) float64 {
 // [1/(n+1), 1]: no p-value is smaller than 1/(n+1), however extreme the
 // score. s may be infinite; NaN is an error.
 func (c *Calibration) PValue(s float64) (float64, error) {
+	if err := c.check("alarm.Calibration.PValue"); err != nil {
+		return math.NaN(), err
+	}
 	if math.IsNaN(s) {
 		return math.NaN(), errs.Arg("alarm.Calibration.PValue", "s", "score is NaN")
 	}
@@ -191,6 +195,9 @@ func (c *Calibration) PValue(s float64) (float64, error) {
 // PValues returns the conformal p-value (see PValue) of every score; a NaN
 // score is an error that names its index.
 func (c *Calibration) PValues(scores []float64) ([]float64, error) {
+	if err := c.check("alarm.Calibration.PValues"); err != nil {
+		return nil, err
+	}
 	if err := checkScores("alarm.Calibration.PValues", scores); err != nil {
 		return nil, err
 	}
@@ -205,6 +212,9 @@ func (c *Calibration) PValues(scores []float64) ([]float64, error) {
 // threshold). A NaN score is an error that names its index: a NaN never
 // silently passes as normal.
 func (c *Calibration) Flags(scores []float64) ([]bool, error) {
+	if err := c.check("alarm.Calibration.Flags"); err != nil {
+		return nil, err
+	}
 	if err := checkScores("alarm.Calibration.Flags", scores); err != nil {
 		return nil, err
 	}
@@ -213,6 +223,14 @@ func (c *Calibration) Flags(scores []float64) ([]bool, error) {
 		out[i] = s > c.threshold
 	}
 	return out, nil
+}
+
+// check reports a nil or zero Calibration, which has no scores.
+func (c *Calibration) check(where string) error {
+	if c == nil || len(c.scores) == 0 {
+		return fmt.Errorf("%s: the calibration holds no scores (build it with Calibrate): %w", where, ErrBadCalibration)
+	}
+	return nil
 }
 
 func checkScores(where string, scores []float64) error {
@@ -240,9 +258,13 @@ type Summary struct {
 }
 
 // Summary returns the summary of the calibration scores. Quantiles are
-// empirical (gonum stat.Quantile with stat.Empirical).
+// empirical (gonum stat.Quantile with stat.Empirical). The zero
+// Calibration gives the zero Summary.
 func (c *Calibration) Summary() Summary {
 	s := c.scores
+	if len(s) == 0 {
+		return Summary{}
+	}
 	q := func(p float64) float64 { return stat.Quantile(p, stat.Empirical, s, nil) }
 	mean, sd := stat.MeanStdDev(s, nil)
 	if len(s) < 2 {
@@ -286,6 +308,9 @@ const rule = "alarm when score > threshold; threshold = rank-th smallest of the 
 // are exactly those of the original calibration. Each score takes about 18
 // bytes: 10 000 scores are about 180 kB.
 func (c *Calibration) MarshalJSON() ([]byte, error) {
+	if err := c.check("alarm.Calibration.MarshalJSON"); err != nil {
+		return nil, err
+	}
 	s := c.Summary()
 	return json.Marshal(calibrationJSON{Format: FormatVersion, Rule: rule, Alpha: c.alpha, N: len(c.scores), Rank: c.k,
 		Threshold: c.threshold, Summary: &s, Scores: c.scores})

@@ -22,7 +22,7 @@ import (
 // and the factor is the small-sample correction of Stephens (1970), as
 // given in Press, Teukolsky, Vetterling and Flannery, Numerical Recipes
 // (the Kolmogorov-Smirnov test, section 14.3 of the second edition, cited
-// from memory). It is accurate for ne of about 4 and more.
+// from memory), which gives it as accurate for ne of about 4 and more.
 //
 // The test assumes independent draws. Scores of consecutive records of a
 // time series are correlated, which makes the p-value too small; read D,
@@ -44,12 +44,13 @@ func KolmogorovSmirnov(a, b []float64) (d, p float64, err error) {
 			}
 		}
 	}
-	return ks(a, b)
+	d, p = ks(a, b)
+	return d, p, nil
 }
 
 // ks is KolmogorovSmirnov on checked samples; sorted samples are used as
 // they are.
-func ks(a, b []float64) (d, p float64, err error) {
+func ks(a, b []float64) (d, p float64) {
 	if !slices.IsSorted(a) {
 		a = slices.Clone(a)
 		slices.Sort(a)
@@ -61,7 +62,7 @@ func ks(a, b []float64) (d, p float64, err error) {
 	d = stat.KolmogorovSmirnov(a, nil, b, nil)
 	n, m := float64(len(a)), float64(len(b))
 	rt := math.Sqrt(n * m / (n + m))
-	return d, KolmogorovQ((rt + 0.12 + 0.11/rt) * d), nil
+	return d, KolmogorovQ((rt + 0.12 + 0.11/rt) * d)
 }
 
 // KolmogorovQ returns P(K > lambda) for the Kolmogorov distribution, the
@@ -182,6 +183,9 @@ func (d Drift) RateAboveAlpha() bool { return d.RateLow > d.Alpha }
 // its index; the window must not be empty.
 func (c *Calibration) Drift(window []float64, confidence float64) (Drift, error) {
 	const where = "alarm.Calibration.Drift"
+	if err := c.check(where); err != nil {
+		return Drift{}, err
+	}
 	if confidence == 0 {
 		confidence = 0.95
 	}
@@ -195,16 +199,14 @@ func (c *Calibration) Drift(window []float64, confidence float64) (Drift, error)
 		return Drift{}, err
 	}
 	d := Drift{Window: len(window), Alpha: c.alpha, Confidence: confidence}
-	var err error
-	if d.KS, d.KSPValue, err = ks(window, c.scores); err != nil {
-		return Drift{}, err
-	}
+	d.KS, d.KSPValue = ks(window, c.scores)
 	for _, s := range window {
 		if s > c.threshold {
 			d.Alarms++
 		}
 	}
 	d.Rate = float64(d.Alarms) / float64(d.Window)
+	var err error
 	if d.RateLow, d.RateHigh, err = ClopperPearson(d.Alarms, d.Window, confidence); err != nil {
 		return Drift{}, err
 	}

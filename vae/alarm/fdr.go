@@ -95,6 +95,9 @@ type Screening struct {
 // names its index; an empty batch is an error.
 func (c *Calibration) Screen(scores []float64, fdr float64) (Screening, error) {
 	const where = "alarm.Calibration.Screen"
+	if err := c.check(where); err != nil {
+		return Screening{}, err
+	}
 	if !(fdr > 0 && fdr < 1) {
 		return Screening{}, errs.Arg(where, "fdr", "%v, want 0 < fdr < 1", fdr)
 	}
