@@ -61,13 +61,15 @@
 // (Drift.RateAboveAlpha) means: recalibrate on recent normal records, or
 // retrain. KolmogorovSmirnov, KolmogorovQ and ClopperPearson are exported.
 //
-// Scores of consecutive records of a time series are correlated. The
-// guarantee then still holds for the average over time, but the KS
-// p-value and the binomial interval, which assume independent records, are
-// too optimistic about their precision: with thousands of correlated
-// records a KS p-value is tiny for shifts too small to matter. Read the KS
-// statistic (the size of the shift) and the observed rate against alpha,
-// not the p-value alone.
+// Scores of consecutive records of a time series are correlated, so they
+// are not exchangeable: the guarantee then holds only approximately (for a
+// stable, weakly dependent process the gap is small when the calibration
+// period is long; see Barber, Candes, Ramdas and Tibshirani 2023,
+// "Conformal prediction beyond exchangeability"). The KS p-value and the
+// binomial interval, which assume independent records, overstate their
+// precision: with thousands of correlated records a KS p-value is tiny for
+// shifts too small to matter. Read the KS statistic (the size of the
+// shift) and the observed rate against alpha, not the p-value alone.
 //
 // # Storing a calibration
 //

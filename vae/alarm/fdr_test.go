@@ -22,12 +22,13 @@ func TestBenjaminiHochbergHandWorked(t *testing.T) {
 		want   []bool
 		cutoff float64
 	}{
-		// The 15 p-values of the example in Benjamini and Hochberg (1995,
-		// section 4, from memory), at q = 0.05. The lines k q/m =
+		// The 15 p-values of the worked example in Benjamini and Hochberg
+		// (1995; a thrombolysis trial, values from memory), at q = 0.05. The lines k q/m =
 		// k/300: 0.00333, 0.00667, 0.01, 0.01333, 0.01667, ...; p(4) =
 		// 0.0095 <= 0.01333 and p(k) > k/300 for every k >= 5 (p(5) =
 		// 0.0201 > 0.01667, p(9) = 0.0459 > 0.03, ...), so k = 4: the four
-		// smallest are rejected, as the paper reports.
+		// smallest are rejected (four is also the paper's count, from
+		// memory, against three for Bonferroni at 0.05/15).
 		{"BH 1995 example",
 			[]float64{0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344, 0.0459, 0.3240, 0.4262, 0.5719, 0.6528, 0.7590, 1},
 			0.05,
