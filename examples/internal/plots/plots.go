@@ -170,8 +170,10 @@ type CurveOptions struct {
 	// LegendLeft puts the legend at the bottom right when false (the
 	// place an ROC plot leaves empty) and at the top left when true.
 	LegendLeft bool
-	// Points are named single points drawn over the curves, for example
-	// the operating point of a threshold on an ROC curve.
+	// Points are single points drawn over the curves, for example the
+	// operating point of a threshold on an ROC curve. A named point gets a
+	// legend entry with its shape in black, so that one name can stand for
+	// points of several colours (give the others no name).
 	Points []Point
 }
 
@@ -246,7 +248,9 @@ func Curves(path string, curves []Curve, opt CurveOptions) error {
 		sc.GlyphStyle.Radius = vg.Points(4)
 		p.Add(sc)
 		if pt.Name != "" {
-			p.Legend.Add(pt.Name, sc)
+			key := *sc
+			key.GlyphStyle.Color = color.Black
+			p.Legend.Add(pt.Name, &key)
 		}
 	}
 	if opt.Unit {
