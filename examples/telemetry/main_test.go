@@ -9,11 +9,13 @@ import (
 	"image/png"
 	"math"
 	"os"
+	"slices"
 	"strconv"
 	"strings"
 	"testing"
 	"time"
 
+	"lowerbound.dev/examples/internal/detect"
 	"lowerbound.dev/examples/internal/fleet"
 )
 
@@ -23,6 +25,7 @@ func tinyConfig(t *testing.T) Config {
 	cfg.Stations = 3
 	cfg.HistoryDays = 3
 	cfg.ValDays = 1
+	cfg.CalDays = 1 // 3 stations * 48 records = 144 >= 99, enough for alpha = 1%
 	cfg.TestDays = 2
 	cfg.Interval = 30 * time.Minute
 	cfg.Epochs = 1
@@ -33,7 +36,10 @@ func tinyConfig(t *testing.T) Config {
 
 // TestRunSmoke runs the whole program on a tiny fleet and checks its
 // outputs: the files are there and well-formed, the checkpoint alone
-// reproduces the scores in the CSV, and the metrics are proportions.
+// reproduces the scores, alarms and screening in the CSV, the threshold is
+// the split-conformal order statistic of the calibration scores, the
+// counts behind the reported rates match the CSV, and the metrics are
+// proportions.
 func TestRunSmoke(t *testing.T) {
 	cfg := tinyConfig(t)
 	var log bytes.Buffer
@@ -77,13 +83,14 @@ func TestRunSmoke(t *testing.T) {
 	if len(rows) != res.TestRecords+1 {
 		t.Fatalf("%d CSV rows, want %d records and a header", len(rows), res.TestRecords)
 	}
-	if got := strings.Join(rows[0], ","); got != "station,station_type,time,fault,score,flagged" {
+	if got := strings.Join(rows[0], ","); got != "station,station_type,time,fault,score,p_value,alarm,screened" {
 		t.Errorf("header %q", got)
 	}
 
 	// Score the test period again from the checkpoint alone (model,
-	// standardisation and threshold read from the file) and compare with
-	// the CSV; the CSV holds 4 decimals, so the tolerance is 5e-5.
+	// standardisation and alarm calibration read from the file) and
+	// compare with the CSV; the CSV holds 4 decimals, so the tolerance is
+	// 5e-5.
 	if res.ReloadMaxDiff != 0 {
 		t.Errorf("reloaded model scores differ by up to %g", res.ReloadMaxDiff)
 	}
@@ -91,8 +98,28 @@ func TestRunSmoke(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if sc.threshold != res.Threshold {
-		t.Errorf("checkpoint threshold %v, run used %v", sc.threshold, res.Threshold)
+	if sc.cal.Threshold() != res.Threshold || !slices.Equal(sc.cal.Scores(), res.Calibration.Scores()) {
+		t.Errorf("checkpoint threshold %v, run used %v (or the calibration scores differ)", sc.cal.Threshold(), res.Threshold)
+	}
+	// The threshold is the k-th smallest of the n calibration scores, k =
+	// ceil((n+1)(1-alpha)) (split conformal; Angelopoulos and Bates 2021):
+	// at most n-k scores lie above it and at least n-k+1 at or above it.
+	n := res.CalRecords
+	k := int(math.Ceil(float64(n+1) * (1 - cfg.Alpha)))
+	if res.Calibration.N() != n || res.Calibration.Rank() != k {
+		t.Errorf("calibration n %d rank %d, want %d and %d", res.Calibration.N(), res.Calibration.Rank(), n, k)
+	}
+	above, atOrAbove := 0, 0
+	for _, s := range res.Calibration.Scores() {
+		if s > res.Threshold {
+			above++
+		}
+		if s >= res.Threshold {
+			atOrAbove++
+		}
+	}
+	if above > n-k || atOrAbove < n-k+1 {
+		t.Errorf("threshold %v: %d calibration scores above and %d at or above, want <= %d and >= %d", res.Threshold, above, atOrAbove, n-k, n-k+1)
 	}
 	fl, err := fleet.GenerateFleet(fleet.FleetConfig{Stations: cfg.Stations, HistoryDays: cfg.HistoryDays, TestDays: cfg.TestDays, Interval: cfg.Interval, Seed: cfg.Seed})
 	if err != nil {
@@ -117,8 +144,71 @@ func TestRunSmoke(t *testing.T) {
 		if row[3] != fl.Test[i].Fault.String() {
 			t.Fatalf("row %d: fault %q, want %q", i+2, row[3], fl.Test[i].Fault)
 		}
-		if flagged := strconv.FormatBool(scores[i] > sc.threshold); row[5] != flagged {
-			t.Fatalf("row %d: flagged %q, want %q", i+2, row[5], flagged)
+		if alarm := strconv.FormatBool(scores[i] > sc.cal.Threshold()); row[6] != alarm {
+			t.Fatalf("row %d: alarm %q, want %q", i+2, row[6], alarm)
+		}
+		// p = (1 + #{calibration >= s}) / (n+1), counted here.
+		count := 0
+		for _, c := range sc.cal.Scores() {
+			if c >= scores[i] {
+				count++
+			}
+		}
+		if p, err := strconv.ParseFloat(row[5], 64); err != nil || math.Abs(p-float64(1+count)/float64(n+1)) > 1e-5*p {
+			t.Fatalf("row %d: p-value %q, want %v", i+2, row[5], float64(1+count)/float64(n+1))
+		}
+	}
+
+	// The reported counts are those of the CSV.
+	var normalAlarms, normalRecs, screened, screenedNormal int
+	for _, row := range rows[1:] {
+		isNormal := row[3] == fleet.Normal.String()
+		if isNormal {
+			normalRecs++
+			if row[6] == "true" {
+				normalAlarms++
+			}
+		}
+		if row[7] == "true" {
+			screened++
+			if isNormal {
+				screenedNormal++
+			}
+		}
+	}
+	fa := res.NormalAlarms
+	if fa.Alarms != normalAlarms || fa.Records != normalRecs || fa.Records != res.NormalTestRecords {
+		t.Errorf("false alarms %d of %d, the CSV has %d of %d", fa.Alarms, fa.Records, normalAlarms, normalRecs)
+	}
+	if !(fa.Low <= fa.Rate && fa.Rate <= fa.High) || math.Abs(fa.Rate-float64(normalAlarms)/float64(normalRecs)) > 1e-15 {
+		t.Errorf("false-alarm rate %v with interval [%v, %v]", fa.Rate, fa.Low, fa.High)
+	}
+	if res.ScreenFlags != screened || res.ScreenFalse != screenedNormal || !(res.MeanFDP >= 0 && res.MeanFDP <= 1) {
+		t.Errorf("screening: %d flags, %d normal, mean FDP %v; the CSV has %d and %d", res.ScreenFlags, res.ScreenFalse, res.MeanFDP, screened, screenedNormal)
+	}
+	// Two days screened in daily batches.
+	if res.Batches != 2 {
+		t.Errorf("%d screening batches, want 2", res.Batches)
+	}
+	// Two test days make one drift window of DriftDays = 7 holding every
+	// normal record.
+	if len(res.Drift) != 1 || res.Drift[0].Window != res.NormalTestRecords {
+		t.Fatalf("drift windows %+v, want one of %d records", res.Drift, res.NormalTestRecords)
+	}
+	for _, d := range res.Drift {
+		if !(d.KS >= 0 && d.KS <= 1 && d.KSPValue >= 0 && d.KSPValue <= 1 && d.AllKS >= 0 && d.AllKS <= 1) || d.Alarms != normalAlarms {
+			t.Errorf("drift %+v", d)
+		}
+	}
+
+	// The report states the alarm rule, both operating points, the drift
+	// check and the caution.
+	var rep bytes.Buffer
+	printReport(&rep, cfg, res)
+	for _, want := range []string{"split conformal", "alpha = 1%", "Clopper-Pearson", "alarm, alpha 1%", "screened, FDR 10%",
+		"drift check", "alarm.calibration", "screening aid, not a protection system", "local codes and qualified staff"} {
+		if !strings.Contains(rep.String(), want) {
+			t.Errorf("report lacks %q:\n%s", want, rep.String())
 		}
 	}
 
@@ -137,13 +227,15 @@ func TestRunSmoke(t *testing.T) {
 		if fm.Records == 0 {
 			t.Errorf("%s: no records", fm.Name)
 		}
-		for name, v := range map[string]float64{"recall": fm.Recall(), "AUC": fm.AUC, "false positive rate": fm.FalsePositiveRate()} {
-			if !(v >= 0 && v <= 1) {
-				t.Errorf("%s: %s = %v, want a value in [0, 1]", fm.Name, name, v)
+		for _, d := range []detect.Detection{fm.Alarm, fm.Screened} {
+			for name, v := range map[string]float64{"recall": d.Recall(), "AUC": fm.AUC, "false positive rate": d.FalsePositiveRate()} {
+				if !(v >= 0 && v <= 1) {
+					t.Errorf("%s: %s = %v, want a value in [0, 1]", fm.Name, name, v)
+				}
 			}
-		}
-		if p := fm.Precision(); !math.IsNaN(p) && !(p >= 0 && p <= 1) {
-			t.Errorf("%s: precision = %v", fm.Name, p)
+			if p := d.Precision(); !math.IsNaN(p) && !(p >= 0 && p <= 1) {
+				t.Errorf("%s: precision = %v", fm.Name, p)
+			}
 		}
 	}
 }
@@ -162,8 +254,9 @@ func TestFlags(t *testing.T) {
 		t.Fatalf("-h: err = %v", err)
 	}
 	help := out.String()
-	for _, want := range []string{"-out", "-seed", "-epochs", "-stations", "-days", "-val-days", "-test-days", "-interval", "-k",
-		"-quantile", "-latent", "-hidden", "-batch", "-lr", "-sigma", "invented", "screening aid, not a protection system"} {
+	for _, want := range []string{"-out", "-seed", "-epochs", "-stations", "-days", "-val-days", "-cal-days", "-test-days", "-interval", "-k",
+		"-alpha", "-fdr", "-screen", "-drift-days", "-latent", "-hidden", "-batch", "-lr", "-sigma", "invented",
+		"screening aid, not a protection system", "local codes"} {
 		if !strings.Contains(help, want) {
 			t.Errorf("-h output lacks %q", want)
 		}
@@ -175,9 +268,16 @@ func TestFlags(t *testing.T) {
 	if cfg.Epochs != 3 || len(cfg.Hidden) != 2 || cfg.Hidden[1] != 4 || cfg.Out != "x" {
 		t.Errorf("parsed %+v", cfg)
 	}
-	for _, bad := range [][]string{{"-quantile", "1"}, {"-epochs", "0"}, {"-hidden", "8,x"}, {"-val-days", "28"}, {"extra"}} {
+	for _, bad := range [][]string{{"-alpha", "1"}, {"-fdr", "0"}, {"-epochs", "0"}, {"-hidden", "8,x"}, {"-val-days", "28"},
+		{"-cal-days", "0"}, {"-screen", "1m"}, {"-drift-days", "0"}, {"extra"}} {
 		if _, err := parseFlags(bad, &out); err == nil {
 			t.Errorf("%v: want an error", bad)
 		}
+	}
+	// 5 calibration days of 12 stations are 8640 records; alpha = 0.01%
+	// needs 1/0.0001 - 1 = 9999.
+	out.Reset()
+	if _, err := parseFlags([]string{"-alpha", "0.0001"}, &out); err == nil || !strings.Contains(out.String(), "needs at least 9999") {
+		t.Errorf("-alpha 0.0001: err %v, output %q; want it to say 9999 records are needed", err, out.String())
 	}
 }

@@ -23,37 +23,49 @@ import (
 	"lowerbound.dev/examples/internal/progress"
 	"lowerbound.dev/losses"
 	"lowerbound.dev/vae"
+	"lowerbound.dev/vae/alarm"
 	"lowerbound.dev/vae/dataset"
 )
 
-// Checkpoint metadata keys written with Model.SetExtra.
+// Checkpoint metadata keys written with Model.SetExtra. The alarm
+// calibration goes under alarm.MetadataKey (alarm.Put).
 const (
 	extraStandardizer = "telemetry.standardizer" // JSON of dataset.Standardizer
 	extraFeatures     = "telemetry.features"     // JSON list of sensor names
 	extraTypes        = "telemetry.station_types"
-	extraThreshold    = "telemetry.threshold" // the alarm threshold, nats
 )
 
 // Disclaimer is printed by the program and stated in its documentation.
-const Disclaimer = "The scores are a screening aid, not a protection system: alarms, trips and inspections follow the site's own procedures and qualified staff."
+const Disclaimer = "The scores are a screening aid, not a protection system: alarms, trips and inspections follow the site's own procedures, local codes and qualified staff."
 
 // Config is everything run needs. DefaultConfig gives the values of the
 // command's flags.
 type Config struct {
-	Out         string // output folder, created if missing
-	Seed        uint64 // data, weights, shuffling and scoring noise
-	Epochs      int
-	Stations    int
-	HistoryDays int // normal days before the test period; the last ValDays of them are held out
+	Out      string // output folder, created if missing
+	Seed     uint64 // data, weights, shuffling and scoring noise
+	Epochs   int
+	Stations int
+	// HistoryDays of normal operation precede the test period: the last
+	// CalDays of them calibrate the alarms, the ValDays before those pick
+	// the best epoch, and the rest train.
+	HistoryDays int
 	ValDays     int
+	CalDays     int
 	TestDays    int
 	Interval    time.Duration
 	K           int     // importance samples per score
-	Quantile    float64 // of validation scores, the threshold
-	Latent      int
-	Hidden      []int
-	BatchSize   int
-	LearnRate   float64
+	Alpha       float64 // false-alarm rate of the alarm threshold
+	FDR         float64 // target false discovery rate of the batch screening
+	// Screen is the length of one screening batch: the records of the
+	// whole fleet in each such window of the test period are screened
+	// together at the FDR target.
+	Screen time.Duration
+	// DriftDays is the length of the windows of the drift check.
+	DriftDays int
+	Latent    int
+	Hidden    []int
+	BatchSize int
+	LearnRate float64
 	// Sigma > 0 fixes the Gaussian likelihood's standard deviation (in
 	// standardised units); zero learns one per sensor.
 	Sigma float64
@@ -69,12 +81,16 @@ func DefaultConfig() Config {
 		Seed:        1,
 		Epochs:      20,
 		Stations:    12,
-		HistoryDays: 28,
-		ValDays:     5,
-		TestDays:    7,
+		HistoryDays: 31,
+		ValDays:     3,
+		CalDays:     5,
+		TestDays:    14,
 		Interval:    10 * time.Minute,
 		K:           16,
-		Quantile:    0.99,
+		Alpha:       0.01,
+		FDR:         0.1,
+		Screen:      24 * time.Hour,
+		DriftDays:   7,
 		Latent:      4,
 		Hidden:      []int{64, 32},
 		BatchSize:   128,
@@ -83,37 +99,70 @@ func DefaultConfig() Config {
 }
 
 // FaultMetrics is the detection quality for one fault type (or all faults
-// together): its records against the normal records of the test period.
+// together): its records against the normal records of the test period,
+// at the alarm threshold and under the FDR screening.
 type FaultMetrics struct {
 	Name    string
 	Records int
-	detect.Detection
-	AUC float64
+	// Alarm counts the records above the alarm threshold; Screened those
+	// flagged by the Benjamini-Hochberg screening of their batch.
+	Alarm, Screened detect.Detection
+	AUC             float64
+}
+
+// FalseAlarms is the observed false-alarm rate on normal records with its
+// Clopper-Pearson interval.
+type FalseAlarms struct {
+	Alarms, Records int
+	Rate, Low, High float64
+}
+
+// DriftWindow is the drift check of one window of the test period: the
+// scores of its normal records against the calibration scores.
+type DriftWindow struct {
+	From, To time.Time
+	alarm.Drift
+	// AllKS is the KS statistic of all the window's records, faults
+	// included, against the calibration scores.
+	AllKS float64
 }
 
 // EventResult is the detection of one injected fault.
 type EventResult struct {
 	fleet.FaultEvent
-	Records, Flagged int
+	// Flagged counts the event's records above the alarm threshold and
+	// Screened those flagged by the FDR screening.
+	Records, Flagged, Screened int
 	// FirstFlag is the time from the event's first faulty record to its
-	// first flagged record, or -1 when none was flagged.
+	// first record above the threshold, or -1 when none was.
 	FirstFlag time.Duration
 }
 
 // Result is what run produces besides its files.
 type Result struct {
-	TrainRecords, ValRecords, TestRecords, NormalTestRecords int
-	History                                                  []vae.EpochInfo
-	Threshold                                                float64
+	TrainRecords, ValRecords, CalRecords, TestRecords, NormalTestRecords int
+	History                                                              []vae.EpochInfo
+	// Calibration holds the alarm threshold (for a false-alarm rate of
+	// Config.Alpha) and the calibration scores; Threshold is its threshold.
+	Calibration *alarm.Calibration
+	Threshold   float64
 	// PerFault holds one entry per fault type in the order of fleet.Faults();
 	// Overall pools every faulty record.
 	PerFault []FaultMetrics
 	Overall  FaultMetrics
-	// NormalFlagRate is the fraction of the test period's normal records
-	// flagged; the threshold aims at 1 - Quantile.
-	NormalFlagRate float64
-	// Events holds, per injected fault, how many of its records were
-	// flagged and how soon after the fault began the first flag came.
+	// NormalAlarms is the false-alarm rate observed on the test period's
+	// normal records at the threshold, with its interval (95%).
+	NormalAlarms FalseAlarms
+	// Batches is the number of screening batches; ScreenFlags the records
+	// they flagged, ScreenFalse the normal ones among them, and MeanFDP
+	// the false discovery proportion averaged over the batches (a batch
+	// without flags counts 0).
+	Batches, ScreenFlags, ScreenFalse int
+	MeanFDP                           float64
+	// Drift holds the drift check of each window of DriftDays.
+	Drift []DriftWindow
+	// Events holds, per injected fault, how many of its records alarmed
+	// and how soon after the fault began the first alarm came.
 	Events []EventResult
 	// ReloadMaxDiff is the largest difference between the test scores of
 	// the trained model and of the model read back from its checkpoint
@@ -125,7 +174,16 @@ type Result struct {
 }
 
 func (c Config) validate() error {
-	if err := fleet.CheckFlags(c.Stations, c.HistoryDays, c.ValDays, c.TestDays); err != nil {
+	if c.CalDays < 1 {
+		return fmt.Errorf("-cal-days %d: want >= 1", c.CalDays)
+	}
+	if c.ValDays < 1 {
+		return fmt.Errorf("-val-days %d: want >= 1", c.ValDays)
+	}
+	if c.HistoryDays <= c.ValDays+c.CalDays {
+		return fmt.Errorf("-days %d, -val-days %d, -cal-days %d: want days > val-days + cal-days, to leave days to train on", c.HistoryDays, c.ValDays, c.CalDays)
+	}
+	if err := fleet.CheckFlags(c.Stations, c.HistoryDays, c.ValDays+c.CalDays, c.TestDays); err != nil {
 		return err
 	}
 	switch {
@@ -137,19 +195,42 @@ func (c Config) validate() error {
 		return fmt.Errorf("-interval %v: want between 1m and 6h", c.Interval)
 	case c.K < 1:
 		return fmt.Errorf("-k %d: want >= 1", c.K)
-	case !(c.Quantile > 0 && c.Quantile < 1):
-		return fmt.Errorf("-quantile %v: want 0 < q < 1", c.Quantile)
+	case !(c.Alpha > 0 && c.Alpha < 1):
+		return fmt.Errorf("-alpha %v: want 0 < alpha < 1", c.Alpha)
+	case !(c.FDR > 0 && c.FDR < 1):
+		return fmt.Errorf("-fdr %v: want 0 < fdr < 1", c.FDR)
+	case c.Screen < c.interval():
+		return fmt.Errorf("-screen %v: want at least one sampling interval (%v)", c.Screen, c.interval())
+	case c.DriftDays < 1:
+		return fmt.Errorf("-drift-days %d: want >= 1", c.DriftDays)
 	case c.Latent < 1:
 		return fmt.Errorf("-latent %d: want >= 1", c.Latent)
 	case c.Sigma < 0 || math.IsNaN(c.Sigma):
 		return fmt.Errorf("-sigma %v: want >= 0", c.Sigma)
 	}
+	// The calibration needs enough records for alpha.
+	need, err := alarm.RecordsNeeded(c.Alpha)
+	if err != nil {
+		return fmt.Errorf("-alpha: %w", err)
+	}
+	if have := c.CalDays * c.Stations * int(24*time.Hour/c.interval()); have < need {
+		return fmt.Errorf("-cal-days %d with %d stations gives %d calibration records; -alpha %v needs at least %d", c.CalDays, c.Stations, have, c.Alpha, need)
+	}
 	return nil
 }
 
-// run generates the fleet, trains on normal operation, checkpoints the
-// model with its standardisation, reloads both, scores the test period and
-// writes the plots and the CSV.
+// interval is the sampling interval with its default.
+func (c Config) interval() time.Duration {
+	if c.Interval == 0 {
+		return 10 * time.Minute
+	}
+	return c.Interval
+}
+
+// run generates the fleet, trains on normal operation, calibrates the
+// alarms on held-out normal days, checkpoints the model with its
+// standardisation and calibration, reloads them, scores the test period,
+// screens it, checks it for drift and writes the plots and the CSV.
 func run(ctx context.Context, cfg Config) (Result, error) {
 	t0 := time.Now()
 	if err := cfg.validate(); err != nil {
@@ -167,21 +248,36 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	}
 	var res Result
 
-	// 1. Invented data.
+	// 1. Invented data: train, validation (best epoch) and calibration
+	// (alarm threshold) days from the history, then the test period.
 	fl, err := fleet.GenerateFleet(fleet.FleetConfig{Stations: cfg.Stations, HistoryDays: cfg.HistoryDays, TestDays: cfg.TestDays,
 		Interval: cfg.Interval, Seed: cfg.Seed})
 	if err != nil {
 		return res, err
 	}
-	valFrom := fleet.Start().AddDate(0, 0, cfg.HistoryDays-cfg.ValDays)
-	trainRaw, valRaw, testRaw, err := fl.Sets(valFrom)
+	calFrom := fleet.Start().AddDate(0, 0, cfg.HistoryDays-cfg.CalDays)
+	valFrom := calFrom.AddDate(0, 0, -cfg.ValDays)
+	trainRaw, heldOutRaw, testRaw, err := fl.Sets(valFrom)
 	if err != nil {
 		return res, err
 	}
-	res.TrainRecords, res.ValRecords, res.TestRecords = trainRaw.Len(), valRaw.Len(), testRaw.Len()
-	fmt.Fprintf(log, "fleet: %d stations (%s), %d sensors every %v; train %d records (%d days), validation %d (%d days), test %d (%d days) with %d injected faults\n",
-		cfg.Stations, typeSummary(fl.Stations), fleet.NumSensors, cfg.Interval, res.TrainRecords, cfg.HistoryDays-cfg.ValDays,
-		res.ValRecords, cfg.ValDays, res.TestRecords, cfg.TestDays, len(fl.Events))
+	_, heldOut := fleet.SplitAt(fl.History, valFrom)
+	valRecs, calRecs := fleet.SplitAt(heldOut, calFrom)
+	valRaw, err := fleet.ToSet(valRecs)
+	if err != nil {
+		return res, fmt.Errorf("validation records: %w", err)
+	}
+	calRaw, err := fleet.ToSet(calRecs)
+	if err != nil {
+		return res, fmt.Errorf("calibration records: %w", err)
+	}
+	if valRaw.Len()+calRaw.Len() != heldOutRaw.Len() {
+		return res, fmt.Errorf("held-out split: %d + %d records, want %d", valRaw.Len(), calRaw.Len(), heldOutRaw.Len())
+	}
+	res.TrainRecords, res.ValRecords, res.CalRecords, res.TestRecords = trainRaw.Len(), valRaw.Len(), calRaw.Len(), testRaw.Len()
+	fmt.Fprintf(log, "fleet: %d stations (%s), %d sensors every %v; train %d records (%d days), validation %d (%d days), calibration %d (%d days), test %d (%d days) with %d injected faults\n",
+		cfg.Stations, typeSummary(fl.Stations), fleet.NumSensors, cfg.interval(), res.TrainRecords, cfg.HistoryDays-cfg.ValDays-cfg.CalDays,
+		res.ValRecords, cfg.ValDays, res.CalRecords, cfg.CalDays, res.TestRecords, cfg.TestDays, len(fl.Events))
 
 	for _, ev := range fl.Events {
 		what := ev.Fault.String()
@@ -202,6 +298,10 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		return res, err
 	}
 	val, err := z.Apply(valRaw)
+	if err != nil {
+		return res, err
+	}
+	calSet, err := z.Apply(calRaw)
 	if err != nil {
 		return res, err
 	}
@@ -236,19 +336,21 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		}
 	}
 	fmt.Fprintf(log, "trained %d epochs in %.1fs; kept the weights of epoch %d (best validation loss)\n", len(res.History), trainTime.Seconds(), best)
-	fmt.Fprintf(log, "scoring %d validation and %d test records with K = %d importance samples\n", val.Len(), testRaw.Len(), cfg.K)
+	fmt.Fprintf(log, "scoring %d calibration and %d test records with K = %d importance samples\n", calSet.Len(), testRaw.Len(), cfg.K)
 
-	// 4. Threshold from the validation scores of the trained model.
-	valScores, err := m.Score(ctx, val, vae.ScoreOptions{K: cfg.K, Seed: cfg.Seed})
+	// 4. Alarm calibration from the scores of the calibration days, which
+	// neither trained the model nor chose its epoch.
+	calScores, err := m.Score(ctx, calSet, vae.ScoreOptions{K: cfg.K, Seed: cfg.Seed})
 	if err != nil {
 		return res, err
 	}
-	if res.Threshold, err = detect.Quantile(valScores, cfg.Quantile); err != nil {
+	if res.Calibration, err = alarm.Calibrate(calScores, cfg.Alpha); err != nil {
 		return res, err
 	}
+	res.Threshold = res.Calibration.Threshold()
 
 	// 5. Checkpoint: weights, model description, standardisation, sensor
-	// names and threshold in one file.
+	// names and the alarm calibration in one file.
 	zJSON, err := json.Marshal(z)
 	if err != nil {
 		return res, err
@@ -259,11 +361,13 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		typeNames = append(typeNames, t.Name)
 	}
 	types, _ := json.Marshal(typeNames)
-	for k, v := range map[string]string{extraStandardizer: string(zJSON), extraFeatures: string(names), extraTypes: string(types),
-		extraThreshold: strconv.FormatFloat(res.Threshold, 'g', -1, 64)} {
+	for k, v := range map[string]string{extraStandardizer: string(zJSON), extraFeatures: string(names), extraTypes: string(types)} {
 		if err := m.SetExtra(k, v); err != nil {
 			return res, err
 		}
+	}
+	if err := alarm.Put(m, res.Calibration); err != nil {
+		return res, err
 	}
 	res.Checkpoint = filepath.Join(cfg.Out, "model.safetensors")
 	if err := m.Save(res.Checkpoint); err != nil {
@@ -280,7 +384,7 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	if err != nil {
 		return res, err
 	}
-	// The round trip must not change a single score.
+	// The round trip must not change a single score, nor the alarms.
 	test, err := z.Apply(testRaw)
 	if err != nil {
 		return res, err
@@ -292,30 +396,111 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	for i := range scores {
 		res.ReloadMaxDiff = math.Max(res.ReloadMaxDiff, math.Abs(scores[i]-direct[i]))
 	}
-	if scorer.threshold != res.Threshold {
-		return res, fmt.Errorf("checkpoint threshold %v differs from %v", scorer.threshold, res.Threshold)
+	if scorer.cal.Threshold() != res.Threshold || scorer.cal.N() != res.Calibration.N() {
+		return res, fmt.Errorf("checkpoint calibration (threshold %v, n %d) differs from (%v, %d)",
+			scorer.cal.Threshold(), scorer.cal.N(), res.Threshold, res.Calibration.N())
 	}
+	cal := scorer.cal
 
-	// 7. Metrics.
+	// 7. Alarms, and the FDR screening of each batch of Screen.
+	alarms, err := cal.Flags(scores)
+	if err != nil {
+		return res, err
+	}
+	pvalues := make([]float64, len(scores))
+	screened := make([]bool, len(scores))
+	batches := batchesOf(fl.Test, fl.Test[0].Time, cfg.Screen)
+	for _, idx := range batches {
+		bs := make([]float64, len(idx))
+		for j, i := range idx {
+			bs[j] = scores[i]
+		}
+		sc, err := cal.Screen(bs, cfg.FDR)
+		if err != nil {
+			return res, err
+		}
+		falseFlags := 0
+		for j, i := range idx {
+			pvalues[i], screened[i] = sc.PValues[j], sc.Flagged[j]
+			if sc.Flagged[j] && fl.Test[i].Fault == fleet.Normal {
+				falseFlags++
+			}
+		}
+		res.ScreenFlags += sc.Count
+		res.ScreenFalse += falseFlags
+		if sc.Count > 0 {
+			res.MeanFDP += float64(falseFlags) / float64(sc.Count)
+		}
+	}
+	res.Batches = len(batches)
+	res.MeanFDP /= float64(res.Batches)
+
+	// 8. Metrics per fault type.
 	byFault := make([][]float64, fleet.NumFaults)
+	alarmBy := make([][]bool, fleet.NumFaults)
+	screenBy := make([][]bool, fleet.NumFaults)
 	for i, r := range fl.Test {
 		byFault[r.Fault] = append(byFault[r.Fault], scores[i])
+		alarmBy[r.Fault] = append(alarmBy[r.Fault], alarms[i])
+		screenBy[r.Fault] = append(screenBy[r.Fault], screened[i])
 	}
 	normal := byFault[fleet.Normal]
 	res.NormalTestRecords = len(normal)
 	var all []float64
+	var allAlarm, allScreen []bool
 	for _, f := range fleet.Faults() {
-		fm, err := metricsFor(f.String(), byFault[f], normal, res.Threshold)
+		fm, err := metricsFor(f.String(), byFault[f], normal, alarmBy[f], alarmBy[fleet.Normal], screenBy[f], screenBy[fleet.Normal])
 		if err != nil {
 			return res, err
 		}
 		res.PerFault = append(res.PerFault, fm)
 		all = append(all, byFault[f]...)
+		allAlarm = append(allAlarm, alarmBy[f]...)
+		allScreen = append(allScreen, screenBy[f]...)
 	}
-	if res.Overall, err = metricsFor("all faults", all, normal, res.Threshold); err != nil {
+	if res.Overall, err = metricsFor("all faults", all, normal, allAlarm, alarmBy[fleet.Normal], allScreen, screenBy[fleet.Normal]); err != nil {
 		return res, err
 	}
-	res.NormalFlagRate = res.Overall.FalsePositiveRate()
+	fa := FalseAlarms{Alarms: res.Overall.Alarm.FP, Records: res.NormalTestRecords}
+	if fa.Records > 0 {
+		fa.Rate = float64(fa.Alarms) / float64(fa.Records)
+		if fa.Low, fa.High, err = alarm.ClopperPearson(fa.Alarms, fa.Records, 0.95); err != nil {
+			return res, err
+		}
+	}
+	res.NormalAlarms = fa
+
+	// 9. Drift check per window of DriftDays: normal records against the
+	// calibration scores (and all records, for contrast).
+	window := time.Duration(cfg.DriftDays) * 24 * time.Hour
+	for _, idx := range batchesOf(fl.Test, fl.Test[0].Time, window) {
+		var normalW, allW []float64
+		from, to := fl.Test[idx[0]].Time, fl.Test[idx[0]].Time
+		for _, i := range idx {
+			allW = append(allW, scores[i])
+			if fl.Test[i].Fault == fleet.Normal {
+				normalW = append(normalW, scores[i])
+			}
+			if t := fl.Test[i].Time; t.Before(from) {
+				from = t
+			} else if t.After(to) {
+				to = t
+			}
+		}
+		if len(normalW) == 0 {
+			continue
+		}
+		d, err := cal.Drift(normalW, 0.95)
+		if err != nil {
+			return res, err
+		}
+		allKS, _, err := alarm.KolmogorovSmirnov(allW, cal.Scores())
+		if err != nil {
+			return res, err
+		}
+		res.Drift = append(res.Drift, DriftWindow{From: from, To: to, Drift: d, AllKS: allKS})
+	}
+
 	for _, ev := range fl.Events {
 		er := EventResult{FaultEvent: ev, FirstFlag: -1}
 		var onset time.Time
@@ -327,7 +512,10 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 				onset = r.Time
 			}
 			er.Records++
-			if scores[i] > res.Threshold {
+			if screened[i] {
+				er.Screened++
+			}
+			if alarms[i] {
 				if er.Flagged == 0 {
 					er.FirstFlag = r.Time.Sub(onset)
 				}
@@ -337,25 +525,46 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		res.Events = append(res.Events, er)
 	}
 
-	// 8. Files.
+	// 10. Files.
 	res.ScoresCSV = filepath.Join(cfg.Out, "scores.csv")
-	if err := writeScores(res.ScoresCSV, fl, scores, res.Threshold); err != nil {
+	if err := writeScores(res.ScoresCSV, fl, scores, pvalues, alarms, screened); err != nil {
 		return res, err
 	}
 	res.ScoresPNG = filepath.Join(cfg.Out, "scores.png")
-	if err := plotScores(res.ScoresPNG, byFault, res.Threshold, cfg.Quantile); err != nil {
+	if err := plotScores(res.ScoresPNG, byFault, calScores, res.Calibration); err != nil {
 		return res, err
 	}
 	res.ROCPNG = filepath.Join(cfg.Out, "roc.png")
-	if err := plotROC(res.ROCPNG, byFault, res); err != nil {
+	if err := plotROC(res.ROCPNG, byFault, res, cfg); err != nil {
 		return res, err
 	}
 	res.Duration = time.Since(t0)
 	return res, nil
 }
 
-func metricsFor(name string, pos, neg []float64, threshold float64) (FaultMetrics, error) {
-	fm := FaultMetrics{Name: name, Records: len(pos), Detection: detect.Detect(pos, neg, threshold), AUC: math.NaN()}
+// batchesOf groups the indices of recs by consecutive windows of length w
+// from start (records of every station in one window together), in
+// window order; empty windows are left out.
+func batchesOf(recs []fleet.Record, start time.Time, w time.Duration) [][]int {
+	byWindow := map[int][]int{}
+	last := 0
+	for i, r := range recs {
+		b := int(r.Time.Sub(start) / w)
+		byWindow[b] = append(byWindow[b], i)
+		last = max(last, b)
+	}
+	var out [][]int
+	for b := 0; b <= last; b++ {
+		if idx := byWindow[b]; len(idx) > 0 {
+			out = append(out, idx)
+		}
+	}
+	return out
+}
+
+func metricsFor(name string, pos, neg []float64, posAlarm, negAlarm, posScreen, negScreen []bool) (FaultMetrics, error) {
+	fm := FaultMetrics{Name: name, Records: len(pos), Alarm: detect.DetectFlags(posAlarm, negAlarm),
+		Screened: detect.DetectFlags(posScreen, negScreen), AUC: math.NaN()}
 	if len(pos) > 0 && len(neg) > 0 {
 		auc, err := detect.AUC(pos, neg)
 		if err != nil {
@@ -381,12 +590,12 @@ func typeSummary(st []fleet.Station) string {
 	return out
 }
 
-// scorer is what a scoring service holds: the model and the
-// standardisation and threshold read from the checkpoint.
+// scorer is what a scoring service holds: the model, and the
+// standardisation and alarm calibration read from the checkpoint.
 type scorer struct {
-	model     *vae.Model
-	z         dataset.Standardizer
-	threshold float64
+	model *vae.Model
+	z     dataset.Standardizer
+	cal   *alarm.Calibration
 }
 
 func loadScorer(path string) (*scorer, error) {
@@ -405,11 +614,11 @@ func loadScorer(path string) (*scorer, error) {
 	if len(z.Mean) != m.Features() {
 		return nil, fmt.Errorf("%s: standardisation has %d features, model %d", path, len(z.Mean), m.Features())
 	}
-	th, err := strconv.ParseFloat(extra[extraThreshold], 64)
+	cal, err := alarm.Get(m)
 	if err != nil {
-		return nil, fmt.Errorf("%s: metadata %s: %w", path, extraThreshold, err)
+		return nil, fmt.Errorf("%s: %w", path, err)
 	}
-	return &scorer{model: m, z: z, threshold: th}, nil
+	return &scorer{model: m, z: z, cal: cal}, nil
 }
 
 // score standardises raw records and scores them.
@@ -421,7 +630,7 @@ func (s *scorer) score(ctx context.Context, raw *dataset.Set, k int, seed uint64
 	return s.model.Score(ctx, x, vae.ScoreOptions{K: k, Seed: seed})
 }
 
-func writeScores(path string, fl *fleet.Fleet, scores []float64, threshold float64) (err error) {
+func writeScores(path string, fl *fleet.Fleet, scores, pvalues []float64, alarms, screened []bool) (err error) {
 	f, err := os.Create(path)
 	if err != nil {
 		return err
@@ -433,10 +642,11 @@ func writeScores(path string, fl *fleet.Fleet, scores []float64, threshold float
 	}()
 	w := csv.NewWriter(f)
 	types := fleet.StationTypes()
-	_ = w.Write([]string{"station", "station_type", "time", "fault", "score", "flagged"})
+	_ = w.Write([]string{"station", "station_type", "time", "fault", "score", "p_value", "alarm", "screened"})
 	for i, r := range fl.Test {
 		_ = w.Write([]string{strconv.Itoa(r.Station), types[r.Type].Name, r.Time.Format(time.RFC3339), r.Fault.String(),
-			strconv.FormatFloat(scores[i], 'f', 4, 64), strconv.FormatBool(scores[i] > threshold)})
+			strconv.FormatFloat(scores[i], 'f', 4, 64), strconv.FormatFloat(pvalues[i], 'g', 6, 64),
+			strconv.FormatBool(alarms[i]), strconv.FormatBool(screened[i])})
 	}
 	w.Flush()
 	return w.Error()
@@ -455,10 +665,12 @@ func faultColor(f fleet.Fault) color.Color {
 	return color.RGBA{R: 90, G: 90, B: 90, A: 255}
 }
 
-// plotScores draws the score distributions relative to the threshold, on
-// a signed log scale: the normal records sit a few nats below it and the
-// faults up to thousands of nats above it.
-func plotScores(path string, byFault [][]float64, threshold, q float64) error {
+// plotScores draws the score distributions relative to the alarm
+// threshold, on a signed log scale: the normal records sit a few nats below
+// it and the faults up to thousands of nats above it. The calibration
+// scores are drawn too: the threshold is their rank-th smallest.
+func plotScores(path string, byFault [][]float64, calScores []float64, cal *alarm.Calibration) error {
+	threshold := cal.Threshold()
 	rel := func(xs []float64) []float64 {
 		out := make([]float64, len(xs))
 		for i, x := range xs {
@@ -466,11 +678,14 @@ func plotScores(path string, byFault [][]float64, threshold, q float64) error {
 		}
 		return out
 	}
-	groups := []plots.Group{{Name: "normal (test period)", Values: rel(byFault[fleet.Normal]), Color: faultColor(fleet.Normal)}}
+	groups := []plots.Group{
+		{Name: "normal (calibration days)", Values: rel(calScores), Color: color.RGBA{R: 44, G: 160, B: 44, A: 255}},
+		{Name: "normal (test period)", Values: rel(byFault[fleet.Normal]), Color: faultColor(fleet.Normal)},
+	}
 	for _, f := range fleet.Faults() {
 		groups = append(groups, plots.Group{Name: f.String(), Values: rel(byFault[f]), Color: faultColor(f)})
 	}
-	all := slices.Concat(byFault...)
+	all := slices.Concat(append(byFault, calScores)...)
 	return plots.Histograms(path, groups, plots.HistogramOptions{
 		Title:     "Test-period anomaly scores, -log p(x) (higher = less like normal operation)",
 		XLabel:    "score minus alarm threshold, nats (signed log scale)",
@@ -478,21 +693,34 @@ func plotScores(path string, byFault [][]float64, threshold, q float64) error {
 		Max:       math.Max(slices.Max(all)-threshold, 1),
 		SignedLog: true,
 		Bins:      60,
-		Markers:   []plots.Marker{{Name: fmt.Sprintf("threshold %.2f nats = %gth percentile of validation; flag to the right", threshold, 100*q), X: 0}},
+		Markers: []plots.Marker{{X: 0, Name: fmt.Sprintf("alarm threshold %.2f nats: split conformal, false-alarm rate <= %g%%; alarm to the right",
+			threshold, 100*cal.Alpha())}},
 	})
 }
 
-func plotROC(path string, byFault [][]float64, res Result) error {
+// plotROC draws the ROC curve of each fault type against the normal test
+// records, with the operating points of the alarm threshold and of the FDR
+// screening marked.
+func plotROC(path string, byFault [][]float64, res Result, cfg Config) error {
 	var curves []plots.Curve
+	var points []plots.Point
 	for i, f := range fleet.Faults() {
 		if len(byFault[f]) == 0 || len(byFault[fleet.Normal]) == 0 {
 			continue
 		}
 		fpr, tpr := detect.ROCCurve(byFault[f], byFault[fleet.Normal])
-		curves = append(curves, plots.Curve{Name: fmt.Sprintf("%s (AUC %.3f)", f, res.PerFault[i].AUC), X: fpr, Y: tpr, Color: faultColor(f)})
+		fm := res.PerFault[i]
+		curves = append(curves, plots.Curve{Name: fmt.Sprintf("%s (AUC %.3f)", f, fm.AUC), X: fpr, Y: tpr, Color: faultColor(f)})
+		points = append(points,
+			plots.Point{X: fm.Alarm.FalsePositiveRate(), Y: fm.Alarm.Recall(), Color: faultColor(f), Shape: 0},
+			plots.Point{X: fm.Screened.FalsePositiveRate(), Y: fm.Screened.Recall(), Color: faultColor(f), Shape: 2})
 	}
 	if len(curves) == 0 {
 		return errors.New("roc: no faulty or no normal test records")
+	}
+	if len(points) > 1 {
+		points[0].Name = fmt.Sprintf("at the alarm threshold (alpha %g%%)", 100*cfg.Alpha)
+		points[1].Name = fmt.Sprintf("FDR screening (target %g%%)", 100*cfg.FDR)
 	}
 	return plots.Curves(path, curves, plots.CurveOptions{
 		Title:        "ROC per fault type vs normal test records",
@@ -501,5 +729,6 @@ func plotROC(path string, byFault [][]float64, res Result) error {
 		Diagonal:     true,
 		DiagonalName: "chance",
 		Unit:         true,
+		Points:       points,
 	})
 }

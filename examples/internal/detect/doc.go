@@ -5,20 +5,20 @@
 //	AUC(pos, neg)              area under the ROC curve, from ranks (the
 //	                           Mann-Whitney statistic; ties count one half)
 //	ROCCurve(pos, neg)         the ROC curve's points, via gonum stat.ROC
-//	Quantile(xs, q)            empirical quantile, to set an alarm threshold
-//	                           from the scores of normal records
 //	Detect(pos, neg, th)       counts of records flagged (score > th) and
 //	                           passed, as a Detection with Precision, Recall
 //	                           and FalsePositiveRate
+//	DetectFlags(pos, neg)      the same counts from flags set by any rule
 //
-// A typical use sets the threshold at a high quantile of held-out normal
-// scores and reports the detection at that threshold with the AUC:
+// Thresholds come from lowerbound.dev/vae/alarm, which gives them a stated
+// false-alarm rate; a typical use reports the detection at the threshold
+// with the AUC:
 //
-//	th, err := detect.Quantile(valScores, 0.99)
-//	d := detect.Detect(faultScores, normalScores, th)
+//	cal, err := alarm.Calibrate(calScores, 0.01)
+//	d := detect.Detect(faultScores, normalScores, cal.Threshold())
 //	auc, err := detect.AUC(faultScores, normalScores)
 //	fmt.Println(d.Precision(), d.Recall(), auc)
 //
-// AUC and Quantile return an error for empty or invalid input; rates that
-// are undefined (no flags, no positives, no negatives) are NaN.
+// AUC returns an error for empty or invalid input; rates that are
+// undefined (no flags, no positives, no negatives) are NaN.
 package detect

@@ -3,7 +3,6 @@ package detect
 import (
 	"fmt"
 	"math"
-	"slices"
 	"sort"
 
 	"gonum.org/v1/gonum/stat"
@@ -79,21 +78,6 @@ func ROCCurve(pos, neg []float64) (fpr, tpr []float64) {
 	return fpr, tpr
 }
 
-// Quantile returns the empirical q-quantile (0 <= q <= 1) of xs: the
-// smallest value v such that at least a fraction q of xs is <= v (gonum
-// stat.Quantile with stat.Empirical). xs is not modified.
-func Quantile(xs []float64, q float64) (float64, error) {
-	if len(xs) == 0 {
-		return math.NaN(), fmt.Errorf("Quantile: no values")
-	}
-	if !(q >= 0 && q <= 1) {
-		return math.NaN(), fmt.Errorf("Quantile: q = %v, want 0 <= q <= 1", q)
-	}
-	s := slices.Clone(xs)
-	slices.Sort(s)
-	return stat.Quantile(q, stat.Empirical, s, nil), nil
-}
-
 // Detection counts the outcomes of flagging records whose score exceeds a
 // threshold, for one group of positives against the negatives.
 type Detection struct {
@@ -102,6 +86,7 @@ type Detection struct {
 }
 
 // Detect counts the records of pos and neg whose score is above threshold.
+// (vae/alarm sets thresholds with a stated false-alarm rate.)
 func Detect(pos, neg []float64, threshold float64) Detection {
 	var d Detection
 	for _, v := range pos {
@@ -113,6 +98,28 @@ func Detect(pos, neg []float64, threshold float64) Detection {
 	}
 	for _, v := range neg {
 		if v > threshold {
+			d.FP++
+		} else {
+			d.TN++
+		}
+	}
+	return d
+}
+
+// DetectFlags counts the flagged records (true) among the positives and
+// the negatives, for flags that come from a rule other than one threshold
+// (for example Benjamini-Hochberg screening of batches).
+func DetectFlags(pos, neg []bool) Detection {
+	var d Detection
+	for _, f := range pos {
+		if f {
+			d.TP++
+		} else {
+			d.FN++
+		}
+	}
+	for _, f := range neg {
+		if f {
 			d.FP++
 		} else {
 			d.TN++

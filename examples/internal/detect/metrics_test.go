@@ -124,27 +124,23 @@ func TestDetect(t *testing.T) {
 	}
 }
 
-func TestQuantile(t *testing.T) {
-	// Ten values 1..10 in shuffled order: the empirical 0.9-quantile is the
-	// smallest value with at least 90% of the values at or below it, 9;
-	// the 0.95-quantile is 10 (by hand).
-	xs := []float64{4, 10, 1, 7, 3, 9, 2, 8, 6, 5}
-	for _, c := range []struct{ q, want float64 }{{0.9, 9}, {0.95, 10}, {0.1, 1}, {0.5, 5}} {
-		got, err := Quantile(xs, c.q)
-		if err != nil {
-			t.Fatal(err)
+func TestDetectFlags(t *testing.T) {
+	// By hand: positives flagged {yes, no, yes} give TP 2, FN 1; negatives
+	// {no, yes, no, no} give FP 1, TN 3.
+	d := DetectFlags([]bool{true, false, true}, []bool{false, true, false, false})
+	if d != (Detection{TP: 2, FN: 1, FP: 1, TN: 3}) {
+		t.Errorf("DetectFlags = %+v", d)
+	}
+	// The same as Detect when the flags come from one threshold.
+	pos, neg := []float64{9, 6, 5, 1}, []float64{7, 2, 3}
+	above := func(xs []float64) []bool {
+		out := make([]bool, len(xs))
+		for i, x := range xs {
+			out[i] = x > 5
 		}
-		if got != c.want {
-			t.Errorf("Quantile(%v) = %v, want %v", c.q, got, c.want)
-		}
+		return out
 	}
-	if xs[0] != 4 {
-		t.Error("Quantile modified its input")
-	}
-	if _, err := Quantile(nil, 0.5); err == nil {
-		t.Error("no values: want an error")
-	}
-	if _, err := Quantile(xs, 1.5); err == nil {
-		t.Error("q = 1.5: want an error")
+	if a, b := DetectFlags(above(pos), above(neg)), Detect(pos, neg, 5); a != b {
+		t.Errorf("DetectFlags %+v, Detect %+v", a, b)
 	}
 }

@@ -7,8 +7,9 @@
 //	                               markers (thresholds); optionally on a
 //	                               signed log axis, sign(x) log10(1 + |x|),
 //	                               for heavy-tailed scores
-//	Curves(path, curves, opt)      named lines with a legend and an optional
-//	                               dashed diagonal, for ROC curves
+//	Curves(path, curves, opt)      named lines with a legend, an optional
+//	                               dashed diagonal and named points, for ROC
+//	                               curves with their operating points
 //
 // Colours come from gonum/plot's palette unless a Group or Curve sets one,
 // so a caller can keep one colour per category across its plots. The image

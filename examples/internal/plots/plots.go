@@ -170,6 +170,20 @@ type CurveOptions struct {
 	// LegendLeft puts the legend at the bottom right when false (the
 	// place an ROC plot leaves empty) and at the top left when true.
 	LegendLeft bool
+	// Points are single points drawn over the curves, for example the
+	// operating point of a threshold on an ROC curve. A named point gets a
+	// legend entry with its shape in black, so that one name can stand for
+	// points of several colours (give the others no name).
+	Points []Point
+}
+
+// Point is one named point drawn as a marker; Shape picks the glyph from
+// gonum/plot's list (plotutil.Shape).
+type Point struct {
+	Name  string
+	X, Y  float64
+	Color color.Color // nil means black
+	Shape int
 }
 
 // Curves draws the curves with a legend and writes the image to path.
@@ -219,6 +233,24 @@ func Curves(path string, curves []Curve, opt CurveOptions) error {
 		p.Add(l)
 		if opt.DiagonalName != "" {
 			p.Legend.Add(opt.DiagonalName, l)
+		}
+	}
+	for _, pt := range opt.Points {
+		sc, err := plotter.NewScatter(plotter.XYs{{X: pt.X, Y: pt.Y}})
+		if err != nil {
+			return fmt.Errorf("plots.Curves: point %q: %w", pt.Name, err)
+		}
+		sc.GlyphStyle.Color = pt.Color
+		if sc.GlyphStyle.Color == nil {
+			sc.GlyphStyle.Color = color.Black
+		}
+		sc.GlyphStyle.Shape = plotutil.Shape(pt.Shape)
+		sc.GlyphStyle.Radius = vg.Points(4)
+		p.Add(sc)
+		if pt.Name != "" {
+			key := *sc
+			key.GlyphStyle.Color = color.Black
+			p.Legend.Add(pt.Name, &key)
 		}
 	}
 	if opt.Unit {

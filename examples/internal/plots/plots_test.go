@@ -35,7 +35,8 @@ func TestHistogramsAndCurves(t *testing.T) {
 		decodePNG(t, p)
 	}
 	p := filepath.Join(dir, "c.png")
-	if err := Curves(p, []Curve{{Name: "c", X: []float64{0, 0.2, 1}, Y: []float64{0, 0.7, 1}}}, CurveOptions{Diagonal: true, DiagonalName: "chance", Unit: true}); err != nil {
+	if err := Curves(p, []Curve{{Name: "c", X: []float64{0, 0.2, 1}, Y: []float64{0, 0.7, 1}}}, CurveOptions{Diagonal: true, DiagonalName: "chance", Unit: true,
+		Points: []Point{{Name: "at the threshold", X: 0.01, Y: 0.7}, {X: 0.5, Y: 0.9, Shape: 2}}}); err != nil {
 		t.Fatal(err)
 	}
 	decodePNG(t, p)
