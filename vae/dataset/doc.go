@@ -53,7 +53,24 @@
 // against a class count and can stop after the first Limit records.
 // Errors give the file and the byte offset into the decompressed stream:
 // a bad magic at offset 0, an unknown type at offset 2, the offset where
-// truncated data ends, the offset of an out-of-range label.
+// truncated data ends, the offset of an out-of-range label, the offset of
+// a dimension that makes the product of the non-zero dimensions exceed
+// 2^40.
+//
+// Memory follows the data that arrives, never the header's claim: reading
+// an IDX stream allocates at most 32 bytes per element the (decompressed)
+// stream actually holds, plus 256 KiB of buffers; labels add 8 bytes per
+// label. A 12-byte header claiming billions of elements costs the buffers
+// only. For one-byte elements the bound is 32 times the decompressed size,
+// for float64 elements 4 times (each value is held as a float64).
+//
+// # Labels
+//
+// Class labels lie in [0, MaxClasses) (MaxClasses = 65536), so the class
+// count of a Set, and the width of a one-hot row, is at most MaxClasses. A
+// larger label is an error naming the file and the line and column (CSV),
+// the record and byte offset (IDX) or the record (WithLabels); a larger
+// class count in an option or argument is a bad argument.
 //
 // # CSV files
 //

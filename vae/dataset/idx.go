@@ -37,14 +37,25 @@ func idxSize(t byte) int {
 	return 0
 }
 
-// maxPrealloc bounds how many elements are allocated up front from a header's
-// claim (2^27, 1 GiB of float64), so a corrupt header cannot force a huge
-// allocation; beyond it the data slice grows as bytes actually arrive.
-const maxPrealloc = 1 << 27
+// idxBytesPerElement and idxFixedBytes state the memory bound of the IDX
+// readers (see doc.go): reading a stream allocates at most
+// idxBytesPerElement bytes per element the stream actually holds, plus
+// idxFixedBytes of buffers, whatever its header claims.
+const (
+	idxBytesPerElement = 32
+	idxFixedBytes      = 256 << 10
+)
 
-// maxElements bounds the element count a header may claim (2^40, far beyond
-// any file this package can hold in memory) so the count cannot overflow.
-const maxElements = 1 << 40
+// maxElements bounds the product of the non-zero dimensions of a header
+// (2^40, far beyond any file this package can hold in memory; less on a
+// 32-bit machine), so that no product of dimensions (the element count, the
+// values per record) can overflow an int, whatever zero dimensions hide.
+const maxElements = min(1<<40, math.MaxInt/8)
+
+// firstChunk is the capacity, in elements, the data slice starts with; it
+// then doubles as elements actually arrive, never beyond what the header
+// claims.
+const firstChunk = 4096
 
 // IDX is the content of one IDX file: its type code, its dimensions (the
 // first one counts records) and every element converted to float64, which
@@ -71,6 +82,14 @@ func (d *IDX) Offset(k int) int64 {
 // stream) of the problem: a bad magic at offset 0, an unknown type code at
 // offset 2, truncated data at the offset where the stream ended, or bytes
 // left over after the last element.
+//
+// The product of the non-zero dimensions may not exceed 2^40; a header
+// beyond that is an error naming the offset of the dimension that crosses
+// it. Memory follows the data, not the header's claim: reading allocates
+// at most 32 bytes per element the stream actually holds (the float64
+// values, in a slice that doubles as they arrive) plus 256 KiB of buffers,
+// so a small file never costs more than a small multiple of its
+// decompressed size, whatever its header claims.
 func ReadIDX(r io.Reader, name string) (*IDX, error) {
 	d, _, err := readIDX("dataset.ReadIDX", r, name, 0)
 	return d, err
@@ -132,35 +151,48 @@ func readIDX(where string, r io.Reader, name string, limit int) (*IDX, int, erro
 		return nil, 0, err
 	}
 	dims := make([]int, nd)
-	total := int64(1)
+	// nonZero is the product of the non-zero dimensions so far: bounding it
+	// bounds every product of dimensions, even those a zero would hide from
+	// the element count (such as the values per record of a file of zero
+	// records).
+	nonZero := int64(1)
 	for i := range dims {
 		v := int64(binary.BigEndian.Uint32(dimBytes[4*i:]))
-		dims[i] = int(v)
-		if v != 0 && total > maxElements/v {
-			return nil, 0, fail(int64(4+4*i), "dimension %d (%d) makes more than %d elements", i, v, int64(maxElements))
+		if v != 0 && nonZero > maxElements/v {
+			return nil, 0, fail(int64(4+4*i), "dimension %d (%d): the product of the non-zero dimensions exceeds %d", i, v, int64(maxElements))
 		}
-		total *= v
+		dims[i] = int(v)
+		if v != 0 {
+			nonZero *= v
+		}
 	}
 	claimed := dims[0]
 	per := int64(1)
 	for _, v := range dims[1:] {
 		per *= int64(v)
 	}
+	total := int64(claimed) * per
 	want := total
 	if limit > 0 && int64(limit) < int64(claimed) {
 		want = int64(limit) * per
 		dims[0] = limit
 	}
-	if want > int64(math.MaxInt)/8 {
-		return nil, 0, fail(4, "%d elements do not fit in memory", want)
-	}
-	data := make([]float64, 0, min(want, maxPrealloc))
-	buf := make([]byte, 1<<16)
+	// The header's claim costs nothing by itself: the data slice starts
+	// small and doubles as elements arrive (see idxBytesPerElement).
+	data := make([]float64, 0, min(want, firstChunk))
+	buf := make([]byte, 1<<15)
 	for int64(len(data)) < want {
 		k := min(int64(len(buf)/size), want-int64(len(data)))
 		chunk := buf[:k*int64(size)]
 		m, err := io.ReadFull(src, chunk)
 		whole := m / size
+		if need := len(data) + whole; need > cap(data) {
+			// Double, but never beyond the claim: a file that is what it
+			// says ends with len(data) == cap(data).
+			grown := make([]float64, len(data), min(want, max(2*int64(cap(data)), int64(need))))
+			copy(grown, data)
+			data = grown
+		}
 		data = decodeIDX(data, typ, chunk[:whole*size])
 		if err != nil {
 			off += int64(m)
@@ -229,8 +261,8 @@ type IDXOptions struct {
 	Binarize  bool
 	Threshold float64
 	// Classes, when positive, is the number of classes: labels must lie in
-	// [0, Classes). Zero accepts any non-negative label and infers the count
-	// as the largest label plus one.
+	// [0, Classes). Zero accepts any label in [0, MaxClasses) and infers the
+	// count as the largest label plus one. It may not exceed MaxClasses.
 	Classes int
 	// Limit, when positive, reads only the first Limit records of each
 	// file (the rest of the file is not read or checked).
@@ -244,8 +276,8 @@ func (o IDXOptions) check(where string) error {
 	if math.IsNaN(o.Threshold) {
 		return argError(where, "opt.Threshold", "NaN")
 	}
-	if o.Classes < 0 {
-		return argError(where, "opt.Classes", "negative class count %d", o.Classes)
+	if o.Classes < 0 || o.Classes > MaxClasses {
+		return argError(where, "opt.Classes", "class count %d not in [0, %d] (MaxClasses)", o.Classes, MaxClasses)
 	}
 	if o.Limit < 0 {
 		return argError(where, "opt.Limit", "negative limit %d", o.Limit)
@@ -335,12 +367,8 @@ func readLabels(where string, r io.Reader, name string, opt IDXOptions) ([]int, 
 	labels := make([]int, len(d.Data))
 	for i, v := range d.Data {
 		l := int(v)
-		if l < 0 || (opt.Classes > 0 && l >= opt.Classes) {
-			hi := "no limit"
-			if opt.Classes > 0 {
-				hi = fmt.Sprint(opt.Classes - 1)
-			}
-			return nil, 0, dataError(where, "%s: record %d (offset %d): label %d out of range [0, %s]", name, i, d.Offset(i), l, hi)
+		if msg := labelProblem(l, opt.Classes); msg != "" {
+			return nil, 0, dataError(where, "%s: record %d (offset %d): %s", name, i, d.Offset(i), msg)
 		}
 		labels[i] = l
 	}
