@@ -44,6 +44,11 @@ type CSVOptions struct {
 // line number in the file, so the header is line 1 and the first record
 // usually line 2) and the column (1-based position and header name).
 // Blank lines are skipped.
+//
+// Memory: reading n bytes allocates at most 256*n bytes plus 64 KiB.
+// Rows of numbers cost about 20 bytes per input byte; the bound is reached
+// only by lines of many empty fields, which encoding/csv holds at about 140
+// bytes per one-byte field.
 func ReadCSV(r io.Reader, name string, opt CSVOptions) (*Set, []string, error) {
 	const where = "dataset.ReadCSV"
 	if r == nil {
