@@ -45,7 +45,9 @@ type CSVOptions struct {
 // usually line 2) and the column (1-based position and header name).
 // Blank lines are skipped.
 //
-// Memory: reading n bytes allocates at most 256*n bytes plus 64 KiB.
+// Memory: reading n bytes allocates at most 256*n bytes plus 64 KiB (an
+// error message that quotes an option, such as a Label not in the header,
+// adds the option's length).
 // Rows of numbers cost about 20 bytes per input byte; the bound is reached
 // only by lines of many empty fields, which encoding/csv holds at about 140
 // bytes per one-byte field.
