@@ -58,11 +58,13 @@
 // 2^40.
 //
 // Memory follows the data that arrives, never the header's claim: reading
-// an IDX stream allocates at most 32 bytes per element the (decompressed)
-// stream actually holds, plus 256 KiB of buffers; labels add 8 bytes per
-// label. A 12-byte header claiming billions of elements costs the buffers
-// only. For one-byte elements the bound is 32 times the decompressed size,
-// for float64 elements 4 times (each value is held as a float64).
+// an IDX stream allocates at most 12 times the size of the element data the
+// (decompressed) stream actually holds, plus 256 KiB of buffers; labels add
+// 8 bytes per label. A 12-byte header claiming billions of elements costs
+// the buffers only. (The raw bytes are read into a buffer that doubles as
+// they arrive, at most 4 bytes per byte; a complete read is then decoded
+// into float64 values, 8 bytes per element, which for one-byte elements is
+// the other 8.)
 //
 // # Labels
 //

@@ -12,7 +12,7 @@ import (
 
 // The fuzz targets of the IDX and CSV readers. Each run checks that the
 // reader neither panics nor allocates beyond its documented bound (doc.go:
-// 32 bytes per element the decompressed IDX stream holds plus 256 KiB;
+// 12 bytes per byte the decompressed IDX stream holds plus 256 KiB;
 // csvBytesPerByte bytes per CSV input byte plus csvFixedBytes), and that
 // whatever it returns is consistent. The seed corpus holds the bad inputs
 // of issue 8, items 1-3, and a few good files.
@@ -100,7 +100,7 @@ func FuzzReadIDX(f *testing.F) {
 	}
 	f.Fuzz(func(t *testing.T, in []byte, limit uint16, scale bool) {
 		n := decompressedLen(in)
-		bound := uint64(idxBytesPerElement*n + idxFixedBytes)
+		bound := uint64(idxAllocPerByte*n + idxFixedBytes)
 
 		var d *IDX
 		var err error
@@ -146,7 +146,7 @@ func FuzzReadIDXLabels(f *testing.F) {
 	f.Add(idxFile(IDXUint8, []uint32{3}, []byte{1, 0, 2}), uint32(MaxClasses+1))
 	f.Fuzz(func(t *testing.T, in []byte, classes uint32) {
 		n := decompressedLen(in)
-		bound := uint64((idxBytesPerElement+8)*n + idxFixedBytes) // labels add one int each
+		bound := uint64((idxAllocPerByte+8)*n + idxFixedBytes) // labels add one int per element, at most 8 bytes per byte
 		var labels []int
 		var err error
 		opt := IDXOptions{Classes: int(classes)}

@@ -21,10 +21,10 @@ func heapAllocated(f func()) uint64 {
 }
 
 // idxAllocBound is the documented bound of ReadIDX (see the IDX section of
-// doc.go): idxBytesPerElement bytes per element the stream actually holds,
-// plus idxFixedBytes of fixed buffers.
-func idxAllocBound(elements int) uint64 {
-	return uint64(idxBytesPerElement*elements + idxFixedBytes)
+// doc.go) for a stream holding n bytes of element data: idxAllocPerByte
+// bytes per byte, plus idxFixedBytes of fixed buffers.
+func idxAllocBound(n int) uint64 {
+	return uint64(idxAllocPerByte*n + idxFixedBytes)
 }
 
 // A 12-byte header claiming 808464432 x 48 one-byte elements (38.8 G) with
@@ -52,8 +52,8 @@ func TestReadIDXHugeClaimSmallFile(t *testing.T) {
 			t.Errorf("ReadIDXImages, gzip %v: allocated %d bytes, bound %d", zipped, got, bound)
 		}
 	}
-	// The same claim followed by 100000 real elements: the cost follows the
-	// elements that arrive.
+	// The same claim followed by 100000 real one-byte elements: the cost
+	// follows the bytes that arrive.
 	const n = 100000
 	in = idxFile(IDXUint8, []uint32{808464432, 48}, bytes.Repeat([]byte{7}, n))
 	var err error

@@ -37,13 +37,17 @@ func idxSize(t byte) int {
 	return 0
 }
 
-// idxBytesPerElement and idxFixedBytes state the memory bound of the IDX
-// readers (see doc.go): reading a stream allocates at most
-// idxBytesPerElement bytes per element the stream actually holds, plus
-// idxFixedBytes of buffers, whatever its header claims.
+// idxAllocPerByte and idxFixedBytes state the memory bound of the IDX
+// readers (see doc.go): reading a stream allocates at most idxAllocPerByte
+// bytes per byte of element data the (decompressed) stream actually holds,
+// plus idxFixedBytes of buffers, whatever its header claims. The raw bytes
+// are read into a buffer that doubles as they arrive (at most 4 bytes per
+// byte, counting every buffer it outgrew), and only a complete read is
+// decoded into a float64 slice of exactly the right length (8 bytes per
+// element, at most 8 per byte, for one-byte elements).
 const (
-	idxBytesPerElement = 32
-	idxFixedBytes      = 256 << 10
+	idxAllocPerByte = 12
+	idxFixedBytes   = 256 << 10
 )
 
 // maxElements bounds the product of the non-zero dimensions of a header
@@ -52,10 +56,10 @@ const (
 // values per record) can overflow an int, whatever zero dimensions hide.
 const maxElements = min(1<<40, math.MaxInt/8)
 
-// firstChunk is the capacity, in elements, the data slice starts with; it
-// then doubles as elements actually arrive, never beyond what the header
+// firstChunk is the capacity, in bytes, the raw data buffer starts with;
+// it then doubles as bytes actually arrive, never beyond what the header
 // claims.
-const firstChunk = 4096
+const firstChunk = 32 << 10
 
 // IDX is the content of one IDX file: its type code, its dimensions (the
 // first one counts records) and every element converted to float64, which
@@ -86,10 +90,11 @@ func (d *IDX) Offset(k int) int64 {
 // The product of the non-zero dimensions may not exceed 2^40; a header
 // beyond that is an error naming the offset of the dimension that crosses
 // it. Memory follows the data, not the header's claim: reading allocates
-// at most 32 bytes per element the stream actually holds (the float64
-// values, in a slice that doubles as they arrive) plus 256 KiB of buffers,
-// so a small file never costs more than a small multiple of its
-// decompressed size, whatever its header claims.
+// at most 12 bytes per byte of element data the (decompressed) stream
+// actually holds, plus 256 KiB of buffers, so a small file never costs more
+// than a small multiple of its decompressed size, whatever its header
+// claims. (The raw bytes are read into a buffer that doubles as they
+// arrive, then decoded into float64 values, 8 bytes each.)
 func ReadIDX(r io.Reader, name string) (*IDX, error) {
 	d, _, err := readIDX("dataset.ReadIDX", r, name, 0)
 	return d, err
@@ -177,33 +182,31 @@ func readIDX(where string, r io.Reader, name string, limit int) (*IDX, int, erro
 		want = int64(limit) * per
 		dims[0] = limit
 	}
-	// The header's claim costs nothing by itself: the data slice starts
-	// small and doubles as elements arrive (see idxBytesPerElement).
-	data := make([]float64, 0, min(want, firstChunk))
-	buf := make([]byte, 1<<15)
-	for int64(len(data)) < want {
-		k := min(int64(len(buf)/size), want-int64(len(data)))
-		chunk := buf[:k*int64(size)]
-		m, err := io.ReadFull(src, chunk)
-		whole := m / size
-		if need := len(data) + whole; need > cap(data) {
-			// Double, but never beyond the claim: a file that is what it
-			// says ends with len(data) == cap(data).
-			grown := make([]float64, len(data), min(want, max(2*int64(cap(data)), int64(need))))
-			copy(grown, data)
-			data = grown
+	// The header's claim costs nothing by itself: the raw bytes go into a
+	// buffer that starts small and doubles as they arrive (never beyond the
+	// claim, so a file that is what it says fills it exactly), and only a
+	// complete read is decoded, into a slice of exactly the right length.
+	hdr := int64(4 + 4*nd)
+	wantBytes := want * int64(size)
+	raw := make([]byte, 0, min(wantBytes, firstChunk))
+	for int64(len(raw)) < wantBytes {
+		if len(raw) == cap(raw) {
+			grown := make([]byte, len(raw), min(wantBytes, 2*int64(cap(raw))))
+			copy(grown, raw)
+			raw = grown
 		}
-		data = decodeIDX(data, typ, chunk[:whole*size])
+		m, err := io.ReadFull(src, raw[len(raw):cap(raw)])
+		raw = raw[:len(raw)+m]
 		if err != nil {
-			off += int64(m)
-			pos := int64(4+4*nd) + int64(len(data))*int64(size)
+			got := len(raw) / size
 			if errors.Is(err, io.EOF) || errors.Is(err, io.ErrUnexpectedEOF) {
-				return nil, 0, fail(pos+int64(m-whole*size), "unexpected end of data after %d of %d elements (element size %d bytes)", len(data), want, size)
+				return nil, 0, fail(hdr+int64(len(raw)), "unexpected end of data after %d of %d elements (element size %d bytes)", got, want, size)
 			}
-			return nil, 0, fail(pos, "reading data: %v", err)
+			return nil, 0, fail(hdr+int64(got*size), "reading data: %v", err)
 		}
 	}
-	end := int64(4+4*nd) + want*int64(size)
+	data := decodeIDX(make([]float64, 0, want), typ, raw)
+	end := hdr + wantBytes
 	if want == total {
 		var one [1]byte
 		m, err := io.ReadFull(src, one[:])
