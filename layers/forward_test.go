@@ -132,13 +132,97 @@ func TestReshapeForward(t *testing.T) {
 		t.Fatal(err)
 	}
 	g := G.NewGraph()
-	x := input(g, "x", randTensor(1, 1, 4, 12))
+	xt := randTensor(1, 1, 4, 12)
+	x := input(g, "x", xt)
 	y, err := r.Forward(NewScope(g), x)
 	if err != nil {
 		t.Fatal(err)
 	}
 	if !y.Shape().Eq(tensor.Shape{4, 2, 3, 2}) {
-		t.Errorf("reshape shape %v, want (4, 2, 3, 2)", y.Shape())
+		t.Fatalf("reshape shape %v, want (4, 2, 3, 2)", y.Shape())
+	}
+	var yv G.Value
+	G.Read(y, &yv)
+	m := G.NewTapeMachine(g)
+	defer m.Close()
+	if err := m.RunAll(); err != nil {
+		t.Fatal(err)
+	}
+	// Values: a row-major reshape keeps the order of each record (common
+	// knowledge), so y[n, c, i, j] = X[n, (c*3+i)*2+j], X read with gonum mat.
+	X := mat.NewDense(4, 12, append([]float64(nil), xt.Data().([]float64)...))
+	yd := yv.(*tensor.Dense)
+	for n := range 4 {
+		for c := range 2 {
+			for i := range 3 {
+				for j := range 2 {
+					got, err := yd.At(n, c, i, j)
+					if err != nil {
+						t.Fatal(err)
+					}
+					if want := X.At(n, (c*3+i)*2+j); got.(float64) != want {
+						t.Fatalf("y[%d,%d,%d,%d] = %v, want X[%d,%d] = %v", n, c, i, j, got, n, (c*3+i)*2+j, want)
+					}
+				}
+			}
+		}
+	}
+}
+
+// TestReshapeThenLayersMatchesGonumMat checks what the layers after a
+// Reshape see: Reshape (N, 12) -> (N, 2, 3, 2), ELU, a 1x1 convolution
+// from 2 channels to 1, Flatten. A 1x1 convolution mixes the channels of
+// each pixel, so on the flat input it is the matrix product E M with
+// E = ELU(X) and M (12, 6), M[(c*3+i)*2+j, i*2+j] = w[c], plus the bias:
+// the reference is that product with gonum mat, ELU by its definition.
+// The input has negative values and the ELU right after the reshape may
+// run in place, so the test also checks that the caller's input tensor is
+// left as it was (a reshape of a leaf must not share the leaf's memory).
+func TestReshapeThenLayersMatchesGonumMat(t *testing.T) {
+	const n = 5
+	r, err := NewReshape("r", 2, 3, 2)
+	if err != nil {
+		t.Fatal(err)
+	}
+	c, err := NewConv2D("c", Conv2DConfig{In: 2, Out: 1, Kernel: [2]int{1, 1}}, f64)
+	if err != nil {
+		t.Fatal(err)
+	}
+	randomizeParams(c.Params(), 81, 1)
+	seq, err := NewSequential("s", r, ELU, c, NewFlatten("f"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	xt := randTensor(3, 2, n, 12)
+	x0 := append([]float64(nil), xt.Data().([]float64)...)
+	got := forward(t, xt, one(seq))[0]
+	if !floats.Equal(xt.Data().([]float64), x0) {
+		t.Fatal("the forward pass wrote into the input tensor")
+	}
+
+	w, b := c.Params()[0].Value.Data().([]float64), c.Params()[1].Value.Data().([]float64)
+	E := mat.NewDense(n, 12, nil)
+	for i := range n {
+		for j := range 12 {
+			E.Set(i, j, activationRef(ELU, x0[i*12+j]))
+		}
+	}
+	M := mat.NewDense(12, 6, nil)
+	for ch := range 2 {
+		for p := range 6 { // pixel p = i*2 + j
+			M.Set(ch*6+p, p, w[ch])
+		}
+	}
+	var Y mat.Dense
+	Y.Mul(E, M) // reference: gonum mat
+	want := make([]float64, 0, n*6)
+	for i := range n {
+		for p := range 6 {
+			want = append(want, Y.At(i, p)+b[0])
+		}
+	}
+	if !floats.EqualApprox(got, want, 1e-12) {
+		t.Errorf("reshape, ELU, 1x1 conv, flatten\n got  %v\n want %v", got, want)
 	}
 }
 

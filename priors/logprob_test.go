@@ -184,19 +184,18 @@ func newTestVamp(t *testing.T, dt tensor.Dtype) (*Vamp, layers.Layer, *layers.Ga
 	return p, enc, head
 }
 
-// encodePseudo runs encoder and head on the pseudo-inputs in a graph built
-// here, independently of the prior's code, and returns mu and logVar.
+// encodePseudo runs encoder and head on the flat (K, F) pseudo-inputs in a
+// graph built here and returns mu and logVar. It is for flat inputs only:
+// image-shaped pseudo-inputs are checked against a reference without any
+// graph (vampRef in vamp_image_test.go).
 func encodePseudo(t *testing.T, p *Vamp, enc layers.Layer, head *layers.GaussianHead, inputShape []int) (mu, lv []float64) {
 	t.Helper()
+	if len(inputShape) != 1 {
+		t.Fatalf("encodePseudo: input shape %v is not flat", inputShape)
+	}
 	g := G.NewGraph()
 	s := layers.NewScope(g)
 	u := s.Bind(p.Params()[0])
-	if len(inputShape) > 1 {
-		var err error
-		if u, err = G.Reshape(u, append(tensor.Shape{p.Components()}, inputShape...)); err != nil {
-			t.Fatal(err)
-		}
-	}
 	h, err := enc.Forward(s, u)
 	if err != nil {
 		t.Fatal(err)
@@ -262,11 +261,16 @@ func TestVampImageShape(t *testing.T) {
 	if got := p.Params()[0].Value.Shape(); !got.Eq(tensor.Shape{4, 6}) {
 		t.Fatalf("pseudo-inputs shape %v, want (4, 6)", got)
 	}
-	mu, lv := encodePseudo(t, p, flatDense{dense}, head, shape)
+	// Reference: the same function of the flat pseudo-inputs with gonum
+	// (a Dense map of each flattened record, then the head), no graph.
+	w, b := mustValues(t, dense.Weight().Value), mustValues(t, dense.Bias().Value)
+	ref := vampImageCase{name: "1x2x3 flatten-dense", shape: shape, width: 3, features: func(x []float64) []float64 {
+		return denseRef(x, 1, 6, w, 3, b)
+	}}
+	setParam(t, p.Params()[0], randVals(35, 4*6, 1, 0))
 	z := randVals(10, 3*d, 1, 0)
 	got := runLogProb(t, p, tensor.Float64, z, 3)
-	logW := []float64{-math.Log(4), -math.Log(4), -math.Log(4), -math.Log(4)}
-	want := mixtureReference(t, logW, mu, lv, z, d)
+	want := vampRef(t, ref, head, mustValues(t, p.Params()[0].Value), 4, 6, z, d)
 	for i := range want {
 		if !closeRel(got[i], want[i], 1e-10) {
 			t.Errorf("row %d: log p = %.15g, want %.15g", i, got[i], want[i])

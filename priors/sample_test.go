@@ -2,8 +2,12 @@ package priors
 
 import (
 	"math"
+	"slices"
 	"testing"
 
+	"gonum.org/v1/gonum/floats"
+	"gonum.org/v1/gonum/stat"
+	"gonum.org/v1/gonum/stat/distuv"
 	"gorgonia.org/tensor"
 )
 
@@ -49,9 +53,12 @@ func TestDiagonalSampleMoments(t *testing.T) {
 
 func TestMixtureSampleMoments(t *testing.T) {
 	p := newTestMixture(t, tensor.Float64)
-	w, err := p.Weights()
-	if err != nil {
-		t.Fatal(err)
+	// The weights the test set, by the documented parametrisation
+	// w = softmax(logits): w_k = exp(l_k - logsumexp(l)), with gonum floats
+	// (not the prior's own Weights).
+	w := make([]float64, len(mixLogits))
+	for k, l := range mixLogits {
+		w[k] = math.Exp(l - floats.LogSumExp(mixLogits))
 	}
 	x := samples(t, p, tensor.Float64, 3, momentDraws)
 	mean, variance := mixtureMoments(w, mixMeans, mixLogVars, 2) // law of total variance
@@ -86,8 +93,9 @@ func TestSampleRepeatable(t *testing.T) {
 }
 
 func TestMixtureInitSpread(t *testing.T) {
-	// The documented initialisation: means are N(0, Spread^2) draws, so the
-	// components differ and the seed decides them.
+	// The documented initialisation: means are independent N(0, Spread^2)
+	// draws decided by the seed, log-variances and logits are zero (so the
+	// weights start equal).
 	a, err := NewMixture("m", 4, 3, MixtureOptions{Seed: 1})
 	if err != nil {
 		t.Fatal(err)
@@ -96,24 +104,67 @@ func TestMixtureInitSpread(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	ma, mb := mustValues(t, a.Params()[1].Value), mustValues(t, b.Params()[1].Value)
-	for i := range ma {
-		if ma[i] != mb[i] {
-			t.Fatal("same seed gave different initial means")
-		}
-	}
-	for k := 1; k < 4; k++ {
-		if ma[k*3] == ma[0] && ma[k*3+1] == ma[1] && ma[k*3+2] == ma[2] {
-			t.Errorf("component %d starts equal to component 0", k)
-		}
-	}
-	w, err := a.Weights()
+	c, err := NewMixture("m", 4, 3, MixtureOptions{Seed: 2})
 	if err != nil {
 		t.Fatal(err)
 	}
-	for k, v := range w {
-		if math.Abs(v-0.25) > 1e-12 {
-			t.Errorf("initial weight %d = %v, want 1/4", k, v)
+	ma, mb, mc := mustValues(t, a.Params()[1].Value), mustValues(t, b.Params()[1].Value), mustValues(t, c.Params()[1].Value)
+	if !slices.Equal(ma, mb) {
+		t.Fatal("same seed gave different initial means")
+	}
+	if slices.Equal(ma, mc) {
+		t.Fatal("different seeds gave the same initial means")
+	}
+	for k := 1; k < 4; k++ {
+		if slices.Equal(ma[k*3:k*3+3], ma[0:3]) {
+			t.Errorf("component %d starts equal to component 0", k)
+		}
+	}
+	for _, i := range []int{0, 2} { // logits and log-variances
+		for j, v := range mustValues(t, a.Params()[i].Value) {
+			if v != 0 {
+				t.Errorf("%s[%d] = %v, want 0", a.Params()[i].Name, j, v)
+			}
+		}
+	}
+
+	// The spread: 600 x 10 = 6000 initial means, with the default spread and
+	// with Spread 1.7, must look like N(0, spread^2) draws.
+	for _, spread := range []float64{0, 1.7} {
+		want := spread
+		if spread == 0 {
+			want = DefaultSpread
+		}
+		p, err := NewMixture("m", 600, 10, MixtureOptions{Seed: 3, Spread: spread, Dtype: tensor.Float64})
+		if err != nil {
+			t.Fatal(err)
+		}
+		m := mustValues(t, p.Params()[1].Value)
+		n := float64(len(m))
+		// Moments: sample mean and variance within 5 standard errors of 0
+		// and spread^2 (for normal draws the variance of the sample variance
+		// is 2 sigma^4 / n; textbook, from memory). A spread off by 10%
+		// moves the variance by about 11 standard errors.
+		mean, variance := stat.PopMeanVariance(m, nil) // gonum stat
+		if se := want / math.Sqrt(n); math.Abs(mean) > 5*se {
+			t.Errorf("spread %v: mean of the initial means %.4f, want 0 (5 se = %.4f)", spread, mean, 5*se)
+		}
+		if se := want * want * math.Sqrt(2/n); math.Abs(variance-want*want) > 5*se {
+			t.Errorf("spread %v: variance of the initial means %.4f, want %.4f (5 se = %.4f)", spread, variance, want*want, 5*se)
+		}
+		// Shape: the one-sample Kolmogorov-Smirnov distance to the
+		// N(0, spread^2) CDF of gonum stat/distuv, below the asymptotic 1%
+		// critical value 1.628/sqrt(n) (Kolmogorov distribution; from memory).
+		sorted := slices.Clone(m)
+		slices.Sort(sorted)
+		ref := distuv.Normal{Mu: 0, Sigma: want}
+		var ks float64
+		for i, v := range sorted {
+			f := ref.CDF(v)
+			ks = math.Max(ks, math.Max(math.Abs(float64(i+1)/n-f), math.Abs(f-float64(i)/n)))
+		}
+		if crit := 1.628 / math.Sqrt(n); ks > crit {
+			t.Errorf("spread %v: Kolmogorov-Smirnov distance %.4f to N(0, %v^2) exceeds %.4f", spread, ks, want, crit)
 		}
 	}
 }

@@ -149,7 +149,16 @@ func (p *Vamp) Params() []*layers.Param { return []*layers.Param{p.pseudo} }
 func (p *Vamp) components(where string, s *layers.Scope) (mu, logVar *G.Node, err error) {
 	u := s.Bind(p.pseudo)
 	if len(p.inputShape) > 1 {
-		if u, err = G.Reshape(u, append(tensor.Shape{p.k}, p.inputShape...)); err != nil {
+		// Through layers.Reshape, not G.Reshape: a reshape of the bound
+		// parameter itself would share its memory, and an in-place op of the
+		// encoder (an ELU first, say) would then write into the
+		// pseudo-inputs. layers.Reshape gives the reshaped batch memory of
+		// its own.
+		r, err := layers.NewReshape(p.name+".pseudo_inputs.reshape", p.inputShape...)
+		if err != nil {
+			return nil, nil, fmt.Errorf("%s: pseudo-inputs: %w", where, err)
+		}
+		if u, err = r.Forward(s, u); err != nil {
 			return nil, nil, fmt.Errorf("%s: pseudo-inputs: %w", where, err)
 		}
 	}

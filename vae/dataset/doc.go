@@ -53,7 +53,26 @@
 // against a class count and can stop after the first Limit records.
 // Errors give the file and the byte offset into the decompressed stream:
 // a bad magic at offset 0, an unknown type at offset 2, the offset where
-// truncated data ends, the offset of an out-of-range label.
+// truncated data ends, the offset of an out-of-range label, the offset of
+// a dimension that makes the product of the non-zero dimensions exceed
+// 2^40.
+//
+// Memory follows the data that arrives, never the header's claim: reading
+// an IDX stream allocates at most 12 times the size of the element data the
+// (decompressed) stream actually holds, plus 256 KiB of buffers; labels add
+// 8 bytes per label. A 12-byte header claiming billions of elements costs
+// the buffers only. (The raw bytes are read into a buffer that doubles as
+// they arrive, at most 4 bytes per byte; a complete read is then decoded
+// into float64 values, 8 bytes per element, which for one-byte elements is
+// the other 8.)
+//
+// # Labels
+//
+// Class labels lie in [0, MaxClasses) (MaxClasses = 65536), so the class
+// count of a Set, and the width of a one-hot row, is at most MaxClasses. A
+// larger label is an error naming the file and the line and column (CSV),
+// the record and byte offset (IDX) or the record (WithLabels); a larger
+// class count in an option or argument is a bad argument.
 //
 // # CSV files
 //
@@ -62,7 +81,8 @@
 // to ignore, and the separator. A bad row (wrong width, an empty or
 // non-numeric value, NaN, infinity) is reported with the file, the line as
 // numbered in the file (the header is line 1) and the column's 1-based
-// position and name.
+// position and name. Reading n bytes of CSV allocates at most 256*n bytes
+// plus 64 KiB (rows of numbers about 20*n).
 //
 // # Standardizing
 //

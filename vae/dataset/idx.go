@@ -37,14 +37,29 @@ func idxSize(t byte) int {
 	return 0
 }
 
-// maxPrealloc bounds how many elements are allocated up front from a header's
-// claim (2^27, 1 GiB of float64), so a corrupt header cannot force a huge
-// allocation; beyond it the data slice grows as bytes actually arrive.
-const maxPrealloc = 1 << 27
+// idxAllocPerByte and idxFixedBytes state the memory bound of the IDX
+// readers (see doc.go): reading a stream allocates at most idxAllocPerByte
+// bytes per byte of element data the (decompressed) stream actually holds,
+// plus idxFixedBytes of buffers, whatever its header claims. The raw bytes
+// are read into a buffer that doubles as they arrive (at most 4 bytes per
+// byte, counting every buffer it outgrew), and only a complete read is
+// decoded into a float64 slice of exactly the right length (8 bytes per
+// element, at most 8 per byte, for one-byte elements).
+const (
+	idxAllocPerByte = 12
+	idxFixedBytes   = 256 << 10
+)
 
-// maxElements bounds the element count a header may claim (2^40, far beyond
-// any file this package can hold in memory) so the count cannot overflow.
-const maxElements = 1 << 40
+// maxElements bounds the product of the non-zero dimensions of a header
+// (2^40, far beyond any file this package can hold in memory; less on a
+// 32-bit machine), so that no product of dimensions (the element count, the
+// values per record) can overflow an int, whatever zero dimensions hide.
+const maxElements = min(1<<40, math.MaxInt/8)
+
+// firstChunk is the capacity, in bytes, the raw data buffer starts with;
+// it then doubles as bytes actually arrive, never beyond what the header
+// claims.
+const firstChunk = 32 << 10
 
 // IDX is the content of one IDX file: its type code, its dimensions (the
 // first one counts records) and every element converted to float64, which
@@ -71,6 +86,15 @@ func (d *IDX) Offset(k int) int64 {
 // stream) of the problem: a bad magic at offset 0, an unknown type code at
 // offset 2, truncated data at the offset where the stream ended, or bytes
 // left over after the last element.
+//
+// The product of the non-zero dimensions may not exceed 2^40; a header
+// beyond that is an error naming the offset of the dimension that crosses
+// it. Memory follows the data, not the header's claim: reading allocates
+// at most 12 bytes per byte of element data the (decompressed) stream
+// actually holds, plus 256 KiB of buffers, so a small file never costs more
+// than a small multiple of its decompressed size, whatever its header
+// claims. (The raw bytes are read into a buffer that doubles as they
+// arrive, then decoded into float64 values, 8 bytes each.)
 func ReadIDX(r io.Reader, name string) (*IDX, error) {
 	d, _, err := readIDX("dataset.ReadIDX", r, name, 0)
 	return d, err
@@ -132,46 +156,57 @@ func readIDX(where string, r io.Reader, name string, limit int) (*IDX, int, erro
 		return nil, 0, err
 	}
 	dims := make([]int, nd)
-	total := int64(1)
+	// nonZero is the product of the non-zero dimensions so far: bounding it
+	// bounds every product of dimensions, even those a zero would hide from
+	// the element count (such as the values per record of a file of zero
+	// records).
+	nonZero := int64(1)
 	for i := range dims {
 		v := int64(binary.BigEndian.Uint32(dimBytes[4*i:]))
-		dims[i] = int(v)
-		if v != 0 && total > maxElements/v {
-			return nil, 0, fail(int64(4+4*i), "dimension %d (%d) makes more than %d elements", i, v, int64(maxElements))
+		if v != 0 && nonZero > maxElements/v {
+			return nil, 0, fail(int64(4+4*i), "dimension %d (%d): the product of the non-zero dimensions exceeds %d", i, v, int64(maxElements))
 		}
-		total *= v
+		dims[i] = int(v)
+		if v != 0 {
+			nonZero *= v
+		}
 	}
 	claimed := dims[0]
 	per := int64(1)
 	for _, v := range dims[1:] {
 		per *= int64(v)
 	}
+	total := int64(claimed) * per
 	want := total
 	if limit > 0 && int64(limit) < int64(claimed) {
 		want = int64(limit) * per
 		dims[0] = limit
 	}
-	if want > int64(math.MaxInt)/8 {
-		return nil, 0, fail(4, "%d elements do not fit in memory", want)
-	}
-	data := make([]float64, 0, min(want, maxPrealloc))
-	buf := make([]byte, 1<<16)
-	for int64(len(data)) < want {
-		k := min(int64(len(buf)/size), want-int64(len(data)))
-		chunk := buf[:k*int64(size)]
-		m, err := io.ReadFull(src, chunk)
-		whole := m / size
-		data = decodeIDX(data, typ, chunk[:whole*size])
+	// The header's claim costs nothing by itself: the raw bytes go into a
+	// buffer that starts small and doubles as they arrive (never beyond the
+	// claim, so a file that is what it says fills it exactly), and only a
+	// complete read is decoded, into a slice of exactly the right length.
+	hdr := int64(4 + 4*nd)
+	wantBytes := want * int64(size)
+	raw := make([]byte, 0, min(wantBytes, firstChunk))
+	for int64(len(raw)) < wantBytes {
+		if len(raw) == cap(raw) {
+			grown := make([]byte, len(raw), min(wantBytes, 2*int64(cap(raw))))
+			copy(grown, raw)
+			raw = grown
+		}
+		m, err := io.ReadFull(src, raw[len(raw):cap(raw)])
+		raw = raw[:len(raw)+m]
 		if err != nil {
-			off += int64(m)
-			pos := int64(4+4*nd) + int64(len(data))*int64(size)
+			got := len(raw) / size
 			if errors.Is(err, io.EOF) || errors.Is(err, io.ErrUnexpectedEOF) {
-				return nil, 0, fail(pos+int64(m-whole*size), "unexpected end of data after %d of %d elements (element size %d bytes)", len(data), want, size)
+				return nil, 0, fail(hdr+int64(len(raw)), "unexpected end of data after %d of %d elements (element size %d bytes)", got, want, size)
 			}
-			return nil, 0, fail(pos, "reading data: %v", err)
+			return nil, 0, fail(hdr+int64(got*size), "reading data: %v", err)
 		}
 	}
-	end := int64(4+4*nd) + want*int64(size)
+	data := decodeIDX(make([]float64, 0, want), typ, raw)
+	end := hdr + wantBytes
 	if want == total {
 		var one [1]byte
 		m, err := io.ReadFull(src, one[:])
@@ -229,8 +264,8 @@ type IDXOptions struct {
 	Binarize  bool
 	Threshold float64
 	// Classes, when positive, is the number of classes: labels must lie in
-	// [0, Classes). Zero accepts any non-negative label and infers the count
-	// as the largest label plus one.
+	// [0, Classes). Zero accepts any label in [0, MaxClasses) and infers the
+	// count as the largest label plus one. It may not exceed MaxClasses.
 	Classes int
 	// Limit, when positive, reads only the first Limit records of each
 	// file (the rest of the file is not read or checked).
@@ -244,8 +279,8 @@ func (o IDXOptions) check(where string) error {
 	if math.IsNaN(o.Threshold) {
 		return argError(where, "opt.Threshold", "NaN")
 	}
-	if o.Classes < 0 {
-		return argError(where, "opt.Classes", "negative class count %d", o.Classes)
+	if o.Classes < 0 || o.Classes > MaxClasses {
+		return argError(where, "opt.Classes", "class count %d not in [0, %d] (MaxClasses)", o.Classes, MaxClasses)
 	}
 	if o.Limit < 0 {
 		return argError(where, "opt.Limit", "negative limit %d", o.Limit)
@@ -335,12 +370,8 @@ func readLabels(where string, r io.Reader, name string, opt IDXOptions) ([]int, 
 	labels := make([]int, len(d.Data))
 	for i, v := range d.Data {
 		l := int(v)
-		if l < 0 || (opt.Classes > 0 && l >= opt.Classes) {
-			hi := "no limit"
-			if opt.Classes > 0 {
-				hi = fmt.Sprint(opt.Classes - 1)
-			}
-			return nil, 0, dataError(where, "%s: record %d (offset %d): label %d out of range [0, %s]", name, i, d.Offset(i), l, hi)
+		if msg := labelProblem(l, opt.Classes); msg != "" {
+			return nil, 0, dataError(where, "%s: record %d (offset %d): %s", name, i, d.Offset(i), msg)
 		}
 		labels[i] = l
 	}

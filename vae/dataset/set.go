@@ -36,6 +36,12 @@ func dataError(where, format string, a ...any) error {
 	return fmt.Errorf("%s: %s: %w", where, fmt.Sprintf(format, a...), ErrInvalidData)
 }
 
+// MaxClasses bounds class labels: every label must lie in [0, MaxClasses),
+// so a Set never has more than MaxClasses classes, and one one-hot row never
+// more than MaxClasses values. A larger label, or a larger class count
+// asked for in an option, is an error.
+const MaxClasses = 1 << 16
+
 // Set is N records of F float64 features held in memory row-major, with
 // optional integer class labels and an optional per-record shape.
 //
@@ -144,7 +150,8 @@ func (s *Set) clone() *Set {
 
 // WithLabels returns a copy of s carrying one class label per record. Labels
 // must lie in [0, classes). classes = 0 means "infer": one more than the
-// largest label. The labels are copied.
+// largest label. Labels and classes are bounded by MaxClasses. The labels
+// are copied.
 func (s *Set) WithLabels(labels []int, classes int) (*Set, error) {
 	const where = "dataset.Set.WithLabels"
 	if s == nil {
@@ -153,8 +160,8 @@ func (s *Set) WithLabels(labels []int, classes int) (*Set, error) {
 	if len(labels) != s.n {
 		return nil, argError(where, "labels", "length %d, want one per record (%d)", len(labels), s.n)
 	}
-	if classes < 0 {
-		return nil, argError(where, "classes", "negative class count %d", classes)
+	if classes < 0 || classes > MaxClasses {
+		return nil, argError(where, "classes", "class count %d not in [0, %d] (MaxClasses)", classes, MaxClasses)
 	}
 	k, err := checkLabels(where, "", labels, classes)
 	if err != nil {
@@ -169,21 +176,17 @@ func (s *Set) WithLabels(labels []int, classes int) (*Set, error) {
 	return c, nil
 }
 
-// checkLabels validates labels against classes (0 = infer) and returns the
-// class count.
+// checkLabels validates labels against classes (0 = infer; at most
+// MaxClasses) and returns the class count, which is at most MaxClasses.
 func checkLabels(where, file string, labels []int, classes int) (int, error) {
 	maxLabel := -1
 	for i, l := range labels {
-		if l < 0 || (classes > 0 && l >= classes) {
-			hi := "inferred"
-			if classes > 0 {
-				hi = fmt.Sprint(classes - 1)
-			}
+		if msg := labelProblem(l, classes); msg != "" {
 			prefix := ""
 			if file != "" {
 				prefix = file + ": "
 			}
-			return 0, dataError(where, "%srecord %d: label %d out of range [0, %s]", prefix, i, l, hi)
+			return 0, dataError(where, "%srecord %d: %s", prefix, i, msg)
 		}
 		maxLabel = max(maxLabel, l)
 	}
@@ -194,6 +197,20 @@ func checkLabels(where, file string, labels []int, classes int) (int, error) {
 		}
 	}
 	return classes, nil
+}
+
+// labelProblem says what is wrong with label l given the class count
+// (0 = infer), or returns "" when l is a good label.
+func labelProblem(l, classes int) string {
+	switch {
+	case l < 0:
+		return fmt.Sprintf("label %d is negative", l)
+	case classes > 0 && l >= classes:
+		return fmt.Sprintf("label %d out of range [0, %d]", l, classes-1)
+	case l >= MaxClasses:
+		return fmt.Sprintf("label %d exceeds the largest label allowed, %d (MaxClasses - 1)", l, MaxClasses-1)
+	}
+	return ""
 }
 
 // WithShape returns a copy of s whose records have the given shape, for
