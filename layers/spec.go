@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"strconv"
 )
 
 // ErrUnknownKind is wrapped by FromSpec when a Spec's Kind names no built-in
@@ -151,3 +152,95 @@ var (
 	_ Describer = Activation("")
 	_ Describer = (*GaussianHead)(nil)
 )
+
+// ParamShape is the name and shape of one parameter.
+type ParamShape struct {
+	Name  string
+	Shape []int
+}
+
+// ParamShapes returns the names and shapes of the parameters that
+// FromSpec (or NewGaussianHeadFromSpec, for kind "gaussian_head") would
+// create for spec, in the order of the layer's Params, without creating
+// them: nothing is allocated in proportion to the sizes the spec claims.
+// A checkpoint reader compares the result with the tensors it holds before
+// it builds anything. The configs are decoded as strictly as by FromSpec;
+// range checks on the sizes are left to FromSpec, and a size that no
+// tensor can have (zero or negative) never matches one.
+func ParamShapes(spec Spec) ([]ParamShape, error) {
+	const where = "layers.ParamShapes"
+	var out []ParamShape
+	err := paramShapes(where, spec, &out, 0)
+	return out, err
+}
+
+// maxSpecDepth bounds the nesting of Sequential specs, so that a crafted
+// description cannot exhaust the stack.
+const maxSpecDepth = 64
+
+func paramShapes(where string, spec Spec, out *[]ParamShape, depth int) error {
+	dense := func(name string, in, outw int) {
+		*out = append(*out, ParamShape{name + ".weight", []int{in, outw}}, ParamShape{name + ".bias", []int{1, outw}})
+	}
+	switch spec.Kind {
+	case kindDense:
+		var c denseConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return err
+		}
+		dense(c.Name, c.In, c.Out)
+	case kindMLP:
+		var c mlpConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return err
+		}
+		for i := 0; i+1 < len(c.Sizes); i++ {
+			dense(c.Name+"."+strconv.Itoa(i), c.Sizes[i], c.Sizes[i+1])
+		}
+	case kindConv2D:
+		var c conv2DConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return err
+		}
+		*out = append(*out, ParamShape{c.Name + ".weight", []int{c.Out, c.In, c.Kernel[0], c.Kernel[1]}},
+			ParamShape{c.Name + ".bias", []int{1, c.Out, 1, 1}})
+	case kindGaussianHead:
+		var c headConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return err
+		}
+		dense(c.Name+".mean", c.In, c.Latent)
+		dense(c.Name+".logvar", c.In, c.Latent)
+	case kindUpsample:
+		var c upsampleConfig
+		return decodeConfig(where, spec, &c)
+	case kindFlatten:
+		var c flattenConfig
+		return decodeConfig(where, spec, &c)
+	case kindReshape:
+		var c reshapeConfig
+		return decodeConfig(where, spec, &c)
+	case kindActivation:
+		var c activationConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return err
+		}
+		return c.Activation.check(where, "spec.Config.activation")
+	case kindSequential:
+		if depth >= maxSpecDepth {
+			return argError(where, "spec", "sequential layers nested deeper than %d", maxSpecDepth)
+		}
+		var c sequentialConfig
+		if err := decodeConfig(where, spec, &c); err != nil {
+			return err
+		}
+		for i, sub := range c.Layers {
+			if err := paramShapes(where, sub, out, depth+1); err != nil {
+				return fmt.Errorf("%s: sequential %q layer %d: %w", where, c.Name, i, err)
+			}
+		}
+	default:
+		return fmt.Errorf("%s: spec.Kind: %q: %w", where, spec.Kind, ErrUnknownKind)
+	}
+	return nil
+}
