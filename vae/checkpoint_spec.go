@@ -252,6 +252,36 @@ func checkSpec(s *modelSpec, format string, tensors map[string]safetensors.Tenso
 		}
 	}
 
+	want, err := impliedParams(s)
+	if err != nil {
+		return err
+	}
+	seen := make(map[string]bool, len(want))
+	for _, p := range want {
+		seen[p.Name] = true
+	}
+	for _, p := range want {
+		t, ok := tensors[p.Name]
+		if !ok {
+			return fmt.Errorf("the description implies parameter %q of shape %v; the file has no such tensor", p.Name, p.Shape)
+		}
+		if !slices.Equal(t.Shape, p.Shape) {
+			return fmt.Errorf("tensor %q has shape %v, the description implies %v", p.Name, t.Shape, p.Shape)
+		}
+	}
+	if len(want) != len(tensors) {
+		for _, name := range sortedNames(tensors) {
+			if !seen[name] {
+				return fmt.Errorf("tensor %q is not a parameter of the described model", name)
+			}
+		}
+	}
+	return nil
+}
+
+// impliedParams returns the parameters (names and shapes) that the model
+// described by s has, in the model's order, without building anything.
+func impliedParams(s *modelSpec) ([]layers.ParamShape, error) {
 	// The parameters the description implies, part by part, in the
 	// model's order; a name repeated within a part is one shared parameter.
 	var want []layers.ParamShape
@@ -275,53 +305,37 @@ func checkSpec(s *modelSpec, format string, tensors map[string]safetensors.Tenso
 		spec layers.Spec
 	}{{"encoder", s.Encoder}, {"head", s.Head}, {"decoder", s.Decoder}} {
 		if part.name == "head" && part.spec.Kind != "gaussian_head" {
-			return fmt.Errorf("head kind %q, want %q", part.spec.Kind, "gaussian_head")
+			return nil, fmt.Errorf("head kind %q, want %q", part.spec.Kind, "gaussian_head")
 		}
 		ps, err := layers.ParamShapes(part.spec)
 		if err != nil {
-			return fmt.Errorf("%s: %w", part.name, err)
+			return nil, fmt.Errorf("%s: %w", part.name, err)
 		}
 		if part.name == "head" {
 			// mean.weight is (in, latent).
 			if len(ps) != 4 || ps[0].Shape[1] != s.Latent {
-				return fmt.Errorf("head latent size differs from latent %d", s.Latent)
+				return nil, fmt.Errorf("head latent size differs from latent %d", s.Latent)
 			}
 		}
 		if err := add(part.name, ps); err != nil {
-			return err
+			return nil, err
 		}
 	}
 	lik, err := likelihoodShapes(s.Likelihood)
 	if err != nil {
-		return err
+		return nil, err
 	}
 	if err := add("likelihood", lik); err != nil {
-		return err
+		return nil, err
 	}
 	pri, err := priorShapes(s.Prior)
 	if err != nil {
-		return err
+		return nil, err
 	}
 	if err := add("prior", pri); err != nil {
-		return err
+		return nil, err
 	}
-	for _, p := range want {
-		t, ok := tensors[p.Name]
-		if !ok {
-			return fmt.Errorf("the description implies parameter %q of shape %v; the file has no such tensor", p.Name, p.Shape)
-		}
-		if !slices.Equal(t.Shape, p.Shape) {
-			return fmt.Errorf("tensor %q has shape %v, the description implies %v", p.Name, t.Shape, p.Shape)
-		}
-	}
-	if len(want) != len(tensors) {
-		for _, name := range sortedNames(tensors) {
-			if _, ok := seen[name]; !ok {
-				return fmt.Errorf("tensor %q is not a parameter of the described model", name)
-			}
-		}
-	}
-	return nil
+	return want, nil
 }
 
 // likelihoodShapes returns the parameters a built-in likelihood has; the
