@@ -238,6 +238,8 @@ func TestLoadDescriptionStrict(t *testing.T) {
 		"prior dimension differs":      editDescription(t, f.Metadata, func(d map[string]any) { d["prior"].(map[string]any)["dim"] = 3 }),
 		"input shape differs":          editDescription(t, f.Metadata, func(d map[string]any) { d["input_shape"] = []int{2, 2} }),
 		"negative classes":             editDescription(t, f.Metadata, func(d map[string]any) { d["classes"] = -1 }),
+		"classes beyond MaxFeatures":   editDescription(t, f.Metadata, func(d map[string]any) { d["classes"] = 1 << 40 }),
+		"input beyond MaxFeatures":     editDescription(t, f.Metadata, func(d map[string]any) { d["input_shape"] = []int{1, 1 << 20, 1 << 20} }),
 		"dtype differs from tensors":   editDescription(t, f.Metadata, func(d map[string]any) { d["dtype"] = "float64" }),
 		"duplicate key":                withDescription(f.Metadata, strings.Replace(raw, `"latent":2`, `"latent":2,"latent":2`, 1)),
 		"trailing data":                withDescription(f.Metadata, raw+` {}`),

@@ -223,8 +223,15 @@ func checkSpec(s *modelSpec, format string, tensors map[string]safetensors.Tenso
 	if !ok || f > lim.maxFeatures {
 		return fmt.Errorf("input_shape %v: want dimensions >= 1 and at most %d values per record (see vae.MaxFeatures)", s.InputShape, lim.maxFeatures)
 	}
-	if s.Classes < 0 || s.Classes > lim.maxFeatures {
-		return fmt.Errorf("classes %d, want 0 to %d", s.Classes, lim.maxFeatures)
+	// The encoder input of one record: F values and the label, as
+	// Classes values (flat records) or Classes planes of H x W (images).
+	label := []int{max(s.Classes, 1)}
+	if len(s.InputShape) == 3 {
+		label = append(label, s.InputShape[1], s.InputShape[2])
+	}
+	lv, ok := product(label)
+	if s.Classes < 0 || !ok || s.Classes > 0 && lv > lim.maxFeatures-f {
+		return fmt.Errorf("classes %d: want 0, or a label that with the %d values of a record fits in %d values per record (see vae.MaxFeatures)", s.Classes, f, lim.maxFeatures)
 	}
 	if s.Latent < 1 {
 		return fmt.Errorf("latent %d, want >= 1", s.Latent)
