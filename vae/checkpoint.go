@@ -124,8 +124,9 @@ func (m *Model) spec() (modelSpec, error) {
 // Save writes the model to path atomically: it writes a temporary file in
 // the same folder and renames it over path, so a failure at any point
 // leaves the previous file at path intact. A temporary file left behind by
-// a save that was killed is removed by the next Save to the same path
-// (see safetensors.WriteFile in checkpoint_format.md).
+// a save that was killed is removed by the next Save to the same path, and
+// only such files: a save in progress, in this process or another, keeps
+// its own (checkpoint_format.md, section 9, says how they are told apart).
 //
 // The file is safetensors, with every parameter under its Param.Name, the
 // model description, a SHA-256 digest of every tensor and the transforms a
