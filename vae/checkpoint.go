@@ -70,6 +70,7 @@ type LoadOption func(*loadConfig)
 type loadConfig struct {
 	maxBytes    int64
 	maxFeatures int
+	kinds       *Kinds
 }
 
 // MaxBytes sets the largest checkpoint accepted, in bytes (default
@@ -94,9 +95,11 @@ func loadOptions(opts []LoadOption) loadConfig {
 	return c
 }
 
-// spec describes the model, or says which part cannot be described.
-func (m *Model) spec() (modelSpec, error) {
-	s := modelSpec{InputShape: m.cfg.InputShape, Classes: m.cfg.Classes, Dtype: m.dtype.String(), Latent: m.latent, Head: m.cfg.Head.Spec()}
+// spec describes the model, or says which part cannot be described. A
+// user part describes itself through layers.Describer with a kind of its
+// own.
+func (m *Model) spec() (s modelSpec, err error) {
+	s = modelSpec{InputShape: m.cfg.InputShape, Classes: m.cfg.Classes, Dtype: m.dtype.String(), Latent: m.latent, Head: m.cfg.Head.Spec()}
 	enc, ok := m.cfg.Encoder.(layers.Describer)
 	if !ok {
 		return s, fmt.Errorf("the encoder (%T) does not implement layers.Describer", m.cfg.Encoder)
@@ -107,11 +110,27 @@ func (m *Model) spec() (modelSpec, error) {
 		return s, fmt.Errorf("the decoder (%T) does not implement layers.Describer", m.cfg.Decoder)
 	}
 	s.Decoder = dec.Spec()
-	if s.Likelihood, ok = losses.DescribeLikelihood(m.cfg.Likelihood); !ok {
-		return s, fmt.Errorf("the likelihood (%T) is not a built-in one", m.cfg.Likelihood)
+	if s.Likelihood.LikelihoodSpec, ok = losses.DescribeLikelihood(m.cfg.Likelihood); !ok {
+		d, isD := m.cfg.Likelihood.(layers.Describer)
+		if !isD {
+			return s, fmt.Errorf("the likelihood (%T) is not a built-in one and does not implement layers.Describer", m.cfg.Likelihood)
+		}
+		sp := d.Spec()
+		if sp.Kind == "" || builtinLikelihood(sp.Kind) {
+			return s, fmt.Errorf("the likelihood (%T) describes itself with kind %q: want a non-empty kind of its own", m.cfg.Likelihood, sp.Kind)
+		}
+		s.Likelihood = likelihoodSpec{LikelihoodSpec: losses.LikelihoodSpec{Kind: sp.Kind}, Config: sp.Config}
 	}
-	if s.Prior, ok = priors.Describe(m.cfg.Prior); !ok {
-		return s, fmt.Errorf("the prior (%T) is not a built-in one", m.cfg.Prior)
+	if s.Prior.Spec, ok = priors.Describe(m.cfg.Prior); !ok {
+		d, isD := m.cfg.Prior.(layers.Describer)
+		if !isD {
+			return s, fmt.Errorf("the prior (%T) is not a built-in one and does not implement layers.Describer", m.cfg.Prior)
+		}
+		sp := d.Spec()
+		if sp.Kind == "" || builtinPrior(sp.Kind) {
+			return s, fmt.Errorf("the prior (%T) describes itself with kind %q: want a non-empty kind of its own", m.cfg.Prior, sp.Kind)
+		}
+		s.Prior = priorSpec{Spec: priors.Spec{Kind: sp.Kind, Dim: m.cfg.Prior.Dim()}, Config: sp.Config}
 	}
 	ts, err := s.transforms()
 	if err != nil {
@@ -180,8 +199,9 @@ func (m *Model) checkpoint(where string, opts []SaveOption) ([]safetensors.Tenso
 	spec, err := m.spec()
 	if err == nil {
 		// Check the description the way Load will, so that a file that
-		// Load refuses is never written silently.
-		err = checkSpec(&spec, formatV2, tensorMap(ts), limits{maxFeatures: math.MaxInt})
+		// Load refuses is never written silently. The parameters of a
+		// self-described user kind are the registry's business, at Load.
+		err = checkSpec(&spec, formatV2, tensorMap(ts), limits{maxFeatures: math.MaxInt, kinds: &selfDescribed{}})
 	}
 	switch {
 	case err == nil:
@@ -330,7 +350,11 @@ func load(where string, f *safetensors.File, cfg loadConfig) (*Model, error) {
 	if err != nil {
 		return nil, bad("metadata %s: %v", metaModel, err)
 	}
-	if err := checkSpec(&spec, version, f.Tensors, limits{maxFeatures: cfg.maxFeatures}); err != nil {
+	lim := limits{maxFeatures: cfg.maxFeatures}
+	if cfg.kinds != nil {
+		lim.kinds = cfg.kinds
+	}
+	if err := checkSpec(&spec, version, f.Tensors, lim); err != nil {
 		return nil, bad("metadata %s: %v", metaModel, err)
 	}
 	dtype := tensor.Float32
@@ -338,7 +362,11 @@ func load(where string, f *safetensors.File, cfg loadConfig) (*Model, error) {
 		dtype = tensor.Float64
 	}
 	opt := layers.Options{Dtype: dtype}
-	enc, err := layers.FromSpec(spec.Encoder, opt)
+	var user layers.UserKinds
+	if cfg.kinds != nil {
+		user = cfg.kinds
+	}
+	enc, err := layers.FromSpecKinds(spec.Encoder, opt, user)
 	if err != nil {
 		return nil, bad("encoder: %v", err)
 	}
@@ -346,15 +374,31 @@ func load(where string, f *safetensors.File, cfg loadConfig) (*Model, error) {
 	if err != nil {
 		return nil, bad("head: %v", err)
 	}
-	dec, err := layers.FromSpec(spec.Decoder, opt)
+	dec, err := layers.FromSpecKinds(spec.Decoder, opt, user)
 	if err != nil {
 		return nil, bad("decoder: %v", err)
 	}
-	lik, err := losses.LikelihoodFromSpec(spec.Likelihood, dtype)
+	var lik losses.Likelihood
+	if lk, ok := cfg.kinds.likelihood(spec.Likelihood.Kind); ok {
+		lik, err = lk.Build(layers.Spec{Kind: spec.Likelihood.Kind, Config: spec.Likelihood.Config}, dtype)
+		if err == nil && lik == nil {
+			err = errors.New("the builder returned no likelihood")
+		}
+	} else {
+		lik, err = losses.LikelihoodFromSpec(spec.Likelihood.LikelihoodSpec, dtype)
+	}
 	if err != nil {
 		return nil, bad("likelihood: %v", err)
 	}
-	prior, err := priors.FromSpec(spec.Prior, dtype, enc, head)
+	var prior priors.Prior
+	if pk, ok := cfg.kinds.prior(spec.Prior.Kind); ok {
+		prior, err = pk.Build(layers.Spec{Kind: spec.Prior.Kind, Config: spec.Prior.Config}, dtype, enc, head)
+		if err == nil && prior == nil {
+			err = errors.New("the builder returned no prior")
+		}
+	} else {
+		prior, err = priors.FromSpec(spec.Prior.Spec, dtype, enc, head)
+	}
 	if err != nil {
 		return nil, bad("prior: %v", err)
 	}

@@ -231,7 +231,7 @@ func loadDescribed(raw string) error {
 	if err != nil {
 		return err
 	}
-	ps, err := impliedParams(&spec)
+	ps, err := impliedParams(&spec, nil)
 	if err != nil {
 		return err
 	}

@@ -21,18 +21,32 @@ import (
 // modelSpec is the model description stored under metaModel. See
 // checkpoint_format.md for every field.
 type modelSpec struct {
-	InputShape []int                 `json:"input_shape"`
-	Classes    int                   `json:"classes,omitempty"`
-	Dtype      string                `json:"dtype"`
-	Latent     int                   `json:"latent"`
-	Encoder    layers.Spec           `json:"encoder"`
-	Head       layers.Spec           `json:"head"`
-	Decoder    layers.Spec           `json:"decoder"`
-	Likelihood losses.LikelihoodSpec `json:"likelihood"`
-	Prior      priors.Spec           `json:"prior"`
+	InputShape []int          `json:"input_shape"`
+	Classes    int            `json:"classes,omitempty"`
+	Dtype      string         `json:"dtype"`
+	Latent     int            `json:"latent"`
+	Encoder    layers.Spec    `json:"encoder"`
+	Head       layers.Spec    `json:"head"`
+	Decoder    layers.Spec    `json:"decoder"`
+	Likelihood likelihoodSpec `json:"likelihood"`
+	Prior      priorSpec      `json:"prior"`
 	// Transforms lists every map from stored numbers to the quantities
 	// the model computes with (format 2 on; absent in format 1).
 	Transforms []transformSpec `json:"transforms,omitempty"`
+}
+
+// likelihoodSpec is a built-in likelihood's spec, or a user likelihood's
+// kind with its Config.
+type likelihoodSpec struct {
+	losses.LikelihoodSpec
+	Config json.RawMessage `json:"config,omitempty"`
+}
+
+// priorSpec is a built-in prior's spec, or a user prior's kind and Dim
+// with its Config.
+type priorSpec struct {
+	priors.Spec
+	Config json.RawMessage `json:"config,omitempty"`
 }
 
 // transformSpec records one map that a reader must apply to recompute the
@@ -178,6 +192,8 @@ func canonical(v any) (string, error) {
 // file's own tensors.
 type limits struct {
 	maxFeatures int
+	// kinds resolves kinds that are not built in; nil knows none.
+	kinds userKinds
 }
 
 // product returns the product of dims, or false if it overflows int or a
@@ -259,8 +275,11 @@ func checkSpec(s *modelSpec, format string, tensors map[string]safetensors.Tenso
 		}
 	}
 
-	want, err := impliedParams(s)
+	want, err := impliedParams(s, lim.kinds)
 	if err != nil {
+		if errors.Is(err, layers.ErrUnknownKind) || errors.Is(err, losses.ErrUnknownLikelihood) || errors.Is(err, priors.ErrUnknownKind) {
+			return fmt.Errorf("%w: %v", errUnregistered, err)
+		}
 		return err
 	}
 	seen := make(map[string]bool, len(want))
@@ -276,7 +295,13 @@ func checkSpec(s *modelSpec, format string, tensors map[string]safetensors.Tenso
 			return fmt.Errorf("tensor %q has shape %v, the description implies %v", p.Name, t.Shape, p.Shape)
 		}
 	}
-	if len(want) != len(tensors) {
+	// At Save, the parameters of self-described user kinds are unknown:
+	// tensors that no built-in part implies are theirs.
+	lenient := false
+	if sd, ok := lim.kinds.(*selfDescribed); ok {
+		lenient = sd.used
+	}
+	if len(want) != len(tensors) && !lenient {
 		for _, name := range sortedNames(tensors) {
 			if !seen[name] {
 				return fmt.Errorf("tensor %q is not a parameter of the described model", name)
@@ -288,7 +313,11 @@ func checkSpec(s *modelSpec, format string, tensors map[string]safetensors.Tenso
 
 // impliedParams returns the parameters (names and shapes) that the model
 // described by s has, in the model's order, without building anything.
-func impliedParams(s *modelSpec) ([]layers.ParamShape, error) {
+func impliedParams(s *modelSpec, kinds userKinds) ([]layers.ParamShape, error) {
+	var user layers.UserKinds
+	if kinds != nil {
+		user = kinds
+	}
 	// The parameters the description implies, part by part, in the
 	// model's order; a name repeated within a part is one shared parameter.
 	var want []layers.ParamShape
@@ -314,7 +343,7 @@ func impliedParams(s *modelSpec) ([]layers.ParamShape, error) {
 		if part.name == "head" && part.spec.Kind != "gaussian_head" {
 			return nil, fmt.Errorf("head kind %q, want %q", part.spec.Kind, "gaussian_head")
 		}
-		ps, err := layers.ParamShapes(part.spec)
+		ps, err := layers.ParamShapesKinds(part.spec, user)
 		if err != nil {
 			return nil, fmt.Errorf("%s: %w", part.name, err)
 		}
@@ -328,14 +357,14 @@ func impliedParams(s *modelSpec) ([]layers.ParamShape, error) {
 			return nil, err
 		}
 	}
-	lik, err := likelihoodShapes(s.Likelihood)
+	lik, err := likelihoodShapes(s.Likelihood, kinds)
 	if err != nil {
 		return nil, err
 	}
 	if err := add("likelihood", lik); err != nil {
 		return nil, err
 	}
-	pri, err := priorShapes(s.Prior)
+	pri, err := priorShapes(s.Prior, kinds)
 	if err != nil {
 		return nil, err
 	}
@@ -347,7 +376,16 @@ func impliedParams(s *modelSpec) ([]layers.ParamShape, error) {
 
 // likelihoodShapes returns the parameters a built-in likelihood has; the
 // names follow losses.NewLearnedGaussian.
-func likelihoodShapes(s losses.LikelihoodSpec) ([]layers.ParamShape, error) {
+func likelihoodShapes(s likelihoodSpec, kinds userKinds) ([]layers.ParamShape, error) {
+	if !builtinLikelihood(s.Kind) && kinds != nil {
+		ps, ok, err := kinds.likelihoodParams(layers.Spec{Kind: s.Kind, Config: s.Config})
+		if ok {
+			if err != nil {
+				return nil, fmt.Errorf("likelihood kind %q: %w", s.Kind, err)
+			}
+			return ps, nil
+		}
+	}
 	switch s.Kind {
 	case losses.KindBernoulli, losses.KindGaussian:
 		return nil, nil
@@ -359,7 +397,16 @@ func likelihoodShapes(s losses.LikelihoodSpec) ([]layers.ParamShape, error) {
 
 // priorShapes returns the parameters a built-in prior has; the names
 // follow the constructors in package priors.
-func priorShapes(s priors.Spec) ([]layers.ParamShape, error) {
+func priorShapes(s priorSpec, kinds userKinds) ([]layers.ParamShape, error) {
+	if !builtinPrior(s.Kind) && kinds != nil {
+		ps, ok, err := kinds.priorParams(layers.Spec{Kind: s.Kind, Config: s.Config})
+		if ok {
+			if err != nil {
+				return nil, fmt.Errorf("prior kind %q: %w", s.Kind, err)
+			}
+			return ps, nil
+		}
+	}
 	switch s.Kind {
 	case priors.KindStandardNormal:
 		return nil, nil
