@@ -24,10 +24,11 @@ import (
 var ErrCheckpoint = errors.New("vae: bad checkpoint")
 
 // ErrNotDescribed is wrapped by the error Save and SaveTo return for a model
-// with a part that a checkpoint cannot describe (a user-written layer,
-// likelihood or prior): Load could not rebuild it. Pass AllowWeightsOnly to
-// write the file anyway; it is then read with LoadWeights into a model
-// built in code.
+// with a part that a checkpoint cannot describe: a user-written layer,
+// likelihood or prior that does not describe itself through
+// layers.Describer (see Kinds), or a Sequential holding such a layer. Load
+// could not rebuild it. Pass AllowWeightsOnly to write the file anyway; it
+// is then read with LoadWeights into a model built in code.
 var ErrNotDescribed = errors.New("vae: the model has a part a checkpoint cannot describe")
 
 // Metadata keys and format versions; checkpoint_format.md documents them.
@@ -153,9 +154,11 @@ func (m *Model) spec() (s modelSpec, err error) {
 // documents all of it for readers in any language. Anything set with
 // Model.SetExtra is stored under its own key.
 //
-// Save refuses, with an error wrapping ErrNotDescribed, a model that Load
-// could not rebuild (one with a user-written layer, likelihood or prior),
-// unless AllowWeightsOnly is given. It refuses a model with a non-finite
+// User-written parts that describe themselves (layers.Describer with a
+// kind of their own) are recorded like built-in ones; Load rebuilds them
+// when given a Kinds that knows their kinds (WithKinds). Save refuses, with
+// an error wrapping ErrNotDescribed, a model with a part that does not
+// describe itself, unless AllowWeightsOnly is given. It refuses a model with a non-finite
 // parameter (ErrNonFinite), naming it. Save reads the parameters under
 // the lock that LoadWeights takes, so it is safe to call while inference
 // and LoadWeights run; it must not run at the same time as Train.
@@ -297,7 +300,8 @@ func firstNonFinite(t safetensors.Tensor) (int, float64, bool) {
 
 // Load reads a checkpoint written by Save and rebuilds the model from the
 // description in its metadata. It reads files of format 2 and of format
-// 1 (written before tensor digests and transforms were recorded).
+// 1 (written before tensor digests and transforms were recorded). Parts of
+// user kinds are rebuilt by the Kinds passed with WithKinds.
 //
 // Before it builds anything, Load checks the whole file: the safetensors
 // structure, the format version, the SHA-256 digest of every tensor, that
