@@ -2,7 +2,9 @@ package layers
 
 import (
 	"encoding/json"
+	"errors"
 	"math"
+	"slices"
 	"testing"
 
 	"gonum.org/v1/gonum/floats"
@@ -222,4 +224,60 @@ func forwardBackward(t *testing.T, l Layer, x *tensor.Dense) ([]float64, [][]flo
 		grads = append(grads, toF64(gv.Data()))
 	}
 	return toF64(y.Value().Data()), grads
+}
+
+// ParamShapes predicts, from the Spec alone, exactly the names and shapes
+// (in order) of the parameters that the layer itself has, for every
+// built-in kind, nested sequentials and the head included.
+func TestParamShapesMatchesParams(t *testing.T) {
+	opt := Options{Seed: 1}
+	ls, _ := builtins(t, opt)
+	head, err := NewGaussianHead("head", 5, 3, opt)
+	if err != nil {
+		t.Fatal(err)
+	}
+	all := map[string]Describer{"head": head}
+	for name, l := range ls {
+		all[name] = l.(Describer)
+	}
+	for name, d := range all {
+		got, err := ParamShapes(d.Spec())
+		if err != nil {
+			t.Fatalf("%s: %v", name, err)
+		}
+		var ps []*Param
+		if pl, ok := d.(interface{ Params() []*Param }); ok {
+			ps = pl.Params()
+		}
+		if len(got) != len(ps) {
+			t.Fatalf("%s: %d shapes, the layer has %d parameters", name, len(got), len(ps))
+		}
+		for i, p := range ps {
+			if got[i].Name != p.Name || !slices.Equal(got[i].Shape, []int(p.Value.Shape())) {
+				t.Errorf("%s: shape %d is %s %v, parameter %s %v", name, i, got[i].Name, got[i].Shape, p.Name, p.Value.Shape())
+			}
+		}
+	}
+	// Unknown kinds, in a sequential too, and malformed configs fail.
+	for name, spec := range map[string]Spec{
+		"unknown":       {Kind: "mystery", Config: []byte(`{}`)},
+		"empty kind":    {Kind: "", Config: []byte(`{"type":"x"}`)},
+		"unknown field": {Kind: kindDense, Config: []byte(`{"name":"d","in":1,"out":2,"bias":false}`)},
+		"nested":        {Kind: kindSequential, Config: []byte(`{"name":"s","layers":[{"kind":"mystery","config":{}}]}`)},
+	} {
+		if _, err := ParamShapes(spec); err == nil {
+			t.Errorf("%s: no error", name)
+		}
+	}
+	deep := `{"kind":"flatten","config":{"name":"f"}}`
+	for range maxSpecDepth + 1 {
+		deep = `{"kind":"sequential","config":{"name":"s","layers":[` + deep + `]}}`
+	}
+	var spec Spec
+	if err := json.Unmarshal([]byte(deep), &spec); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := ParamShapes(spec); !errors.Is(err, ErrInvalidArgument) {
+		t.Errorf("nesting of %d: %v, want ErrInvalidArgument", maxSpecDepth+1, err)
+	}
 }

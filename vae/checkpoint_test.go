@@ -323,7 +323,7 @@ func TestLoadFlippedHeaderByte(t *testing.T) {
 		"opening brace":            8,
 		"a tensor's dtype":         at(`"F32"`) + 2,
 		"a tensor's data offset":   at(`"data_offsets":[`) + len(`"data_offsets":[`),
-		"the format version":       at(`"lowerbound.format":"1"`) + len(`"lowerbound.format":"`),
+		"the format version":       at(`"lowerbound.format":"2"`) + len(`"lowerbound.format":"`),
 		"a shape":                  at(`"shape":[`) + len(`"shape":[`),
 	}
 	path := filepath.Join(dir, "flipped.safetensors")
@@ -420,8 +420,12 @@ func TestSaveUserWrittenPart(t *testing.T) {
 	}
 	a, b := build(1), build(2)
 	path := filepath.Join(t.TempDir(), "user.safetensors")
-	if err := a.Save(path); err != nil {
-		t.Fatalf("Save with a user-written layer: %v", err)
+	wantErr(t, "Save with a user-written layer", a.Save(path), ErrNotDescribed, "AllowWeightsOnly", "encoder")
+	if _, err := os.Stat(path); !errors.Is(err, os.ErrNotExist) {
+		t.Fatalf("the refused Save wrote %s (%v)", path, err)
+	}
+	if err := a.Save(path, AllowWeightsOnly()); err != nil {
+		t.Fatalf("Save with a user-written layer and AllowWeightsOnly: %v", err)
 	}
 	m, err := Load(path)
 	wantErr(t, "Load without a model description", err, ErrCheckpoint, "LoadWeights")

@@ -63,7 +63,12 @@
 //
 // # Checkpoints
 //
-// Save writes a safetensors file atomically; Load rebuilds the model from
-// the description in its metadata. The file layout and tensor names are
-// documented on Save.
+// Save writes a safetensors file atomically (SaveTo, to any io.Writer);
+// Load (LoadFrom, from an io.Reader) rebuilds the model from the
+// description in its metadata, after checking the SHA-256 digest of every
+// tensor and the description against the tensors; LoadWeights reads the
+// weights into a model built in code. The format (tensor names, layouts,
+// metadata keys, the transforms a reader must apply, versions) is
+// documented for readers in any language in checkpoint_format.md in this
+// package's folder.
 package vae

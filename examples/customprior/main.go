@@ -280,9 +280,11 @@ func trainOne(ctx context.Context, cfg config, d *data, priorName string) (outco
 	}
 
 	// Checkpoint and reload. A built-in prior is rebuilt by vae.Load; the
-	// custom one is loaded into a model built by the same code.
+	// custom one cannot be described in the file, so Save is told that a
+	// weights-only file is wanted, which is loaded into a model built by
+	// the same code.
 	o.Checkpoint = filepath.Join(cfg.Out, fileName(priorName))
-	if err := m.Save(o.Checkpoint); err != nil {
+	if err := m.Save(o.Checkpoint, vae.AllowWeightsOnly()); err != nil {
 		return o, err
 	}
 	var back *vae.Model

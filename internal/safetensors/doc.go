@@ -23,7 +23,9 @@
 // writes a temporary file in the target's directory, syncs and closes it,
 // renames it over the target and syncs the directory. If anything fails
 // before the rename, the old file is untouched and the temporary file is
-// removed.
+// removed. A process killed mid-save leaves its temporary file behind; the
+// next WriteFile of the same target removes it (see WriteFile for how a
+// stale file is told from one a live save is writing).
 //
 // Typed helpers build tensors from and decode them to Go slices, bit for bit
 // (NaN payloads and -0 survive): FromFloat32, FromFloat64, FromInt32,
@@ -33,7 +35,7 @@
 //
 // # Reading
 //
-// Read, ReadBytes and ReadFile validate the whole file before returning it
+// Read, ReadBytes, ReadFile and ReadStream validate the whole file before returning it
 // and never panic, whatever the input. Every problem is an error that names
 // the file and a byte offset (or the tensor) and wraps ErrCorrupt; a file
 // that ends too early wraps ErrTruncated, which itself wraps ErrCorrupt.
@@ -49,6 +51,9 @@
 //   - "__metadata__", if present, maps strings to strings;
 //   - the tensors' byte ranges lie inside the buffer and cover it exactly:
 //     no overlap, no hole, no trailing bytes.
+//
+// ReadStream reads from an io.Reader under a caller's size limit, and its
+// memory grows with the bytes that arrive, never with what a header claims.
 //
 // File.Tensors maps names to tensors; File.Tensor looks one up with an error
 // wrapping ErrNotFound, and File.List returns them in name order.

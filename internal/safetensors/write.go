@@ -115,6 +115,17 @@ func write(where string, w io.Writer, tensors []Tensor, metadata map[string]stri
 // the rename the old file at path is untouched and the temporary file is
 // removed. A new file gets permissions 0644; a replaced file keeps its
 // permission bits. A symlink at path is replaced, not followed.
+//
+// The temporary file is named "." + base + ".tmp-" + digits, where base is
+// the last element of path. A process killed during a save cannot remove
+// it, so every WriteFile first removes the temporary files of the same
+// target that no live save is writing: on Linux, macOS and the BSDs a save
+// holds an advisory lock (flock) on its temporary file, which the kernel
+// releases when the process ends, and WriteFile removes each such file it
+// can lock; elsewhere it removes those unmodified for an hour. Temporary
+// files of other targets and every other file are never touched. So at
+// most one stale temporary file per target outlives a crash, until the
+// next save of that target.
 func WriteFile(path string, tensors []Tensor, metadata map[string]string) error {
 	return writeFile(path, tensors, metadata, nil)
 }
@@ -138,7 +149,8 @@ func writeFile(path string, tensors []Tensor, metadata map[string]string, wrap f
 	if fi, err := os.Lstat(path); err == nil && fi.Mode().IsRegular() {
 		perm = fi.Mode().Perm()
 	}
-	f, err := os.CreateTemp(dir, "."+base+".tmp-*")
+	removeStaleTemps(dir, base)
+	f, err := os.CreateTemp(dir, tempPrefix(base)+"*")
 	if err != nil {
 		return fmt.Errorf("%s: %s: %w", where, path, err)
 	}
@@ -152,6 +164,9 @@ func writeFile(path string, tensors []Tensor, metadata map[string]string, wrap f
 			os.Remove(tmp)
 		}
 	}()
+	if err := lockTemp(f); err != nil {
+		return fmt.Errorf("%s: %s: lock the temporary file: %w", where, path, err)
+	}
 	var w io.Writer = f
 	if wrap != nil {
 		w = wrap(f)
@@ -197,4 +212,26 @@ func syncDir(dir string) error {
 		return nil
 	}
 	return err
+}
+
+// tempPrefix is the name prefix of base's temporary files.
+func tempPrefix(base string) string { return "." + base + ".tmp-" }
+
+// removeStaleTemps removes the temporary files of the target base in dir
+// that no live save holds (see WriteFile). Errors are ignored: cleaning up
+// is a courtesy and must not fail the save.
+func removeStaleTemps(dir, base string) {
+	ents, err := os.ReadDir(dir)
+	if err != nil {
+		return
+	}
+	prefix := tempPrefix(base)
+	for _, e := range ents {
+		name := e.Name()
+		rest, ok := strings.CutPrefix(name, prefix)
+		if !ok || rest == "" || strings.Trim(rest, "0123456789") != "" || !e.Type().IsRegular() {
+			continue
+		}
+		removeIfStale(filepath.Join(dir, name))
+	}
 }
