@@ -6,6 +6,7 @@ import (
 	"crypto/sha256"
 	"encoding/hex"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"math"
 	"os"
@@ -20,6 +21,7 @@ import (
 
 	"lowerbound.dev/internal/safetensors"
 	"lowerbound.dev/layers"
+	"lowerbound.dev/losses"
 )
 
 // rewrite writes f's tensors (edited by edit, if not nil) and metadata to a
@@ -386,5 +388,36 @@ func TestConcurrentSaveScoreLoadWeights(t *testing.T) {
 	close(errc)
 	for err := range errc {
 		t.Error(err)
+	}
+}
+
+// Training with CheckpointPath on a model that Save cannot describe fails
+// before the first step (not after the first improved epoch), naming the
+// field; with AllowWeightsOnly in SaveOptions the checkpoint is written.
+func TestTrainCheckpointNeedsDescribableModel(t *testing.T) {
+	opt := f64Opt(1)
+	m := must(New(Config{InputShape: []int{12}, Encoder: opaque{must(layers.NewDense("enc", 12, 8, opt))},
+		Head:       must(layers.NewGaussianHead("head", 8, 3, opt)),
+		Decoder:    must(layers.NewMLP("dec", layers.MLPConfig{Sizes: []int{3, 12}}, opt)),
+		Likelihood: losses.Gaussian{Sigma: 1},
+		Dtype:      tensor.Float64}))
+	data := realSet(t, 20, 12, 3)
+	path := filepath.Join(t.TempDir(), "user.safetensors")
+	steps := 0
+	cfg := TrainConfig{Epochs: 1, BatchSize: 10, Seed: 1, CheckpointPath: path, OnStep: func(StepInfo) { steps++ }}
+	_, err := m.Train(context.Background(), data, cfg)
+	wantErr(t, "Train without SaveOptions", err, ErrConfig, "CheckpointPath", "AllowWeightsOnly")
+	if !errors.Is(err, ErrNotDescribed) {
+		t.Errorf("Train error %v does not wrap ErrNotDescribed", err)
+	}
+	if steps != 0 {
+		t.Errorf("Train ran %d steps before refusing the checkpoint path", steps)
+	}
+	cfg.SaveOptions = []SaveOption{AllowWeightsOnly()}
+	if _, err := m.Train(context.Background(), data, cfg); err != nil {
+		t.Fatalf("Train with AllowWeightsOnly: %v", err)
+	}
+	if _, err := os.Stat(path); err != nil {
+		t.Errorf("no checkpoint written: %v", err)
 	}
 }

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"io"
 	"math"
 	"math/rand/v2"
 	"os"
@@ -75,8 +76,14 @@ type TrainConfig struct {
 	// CheckpointPath, if set, is written atomically after every epoch that
 	// improves the validation negative ELBO (every epoch without
 	// Validation). A failed run leaves the last good file as it was. Its
-	// directory must exist when Train starts.
+	// directory must exist when Train starts, and the model must be one
+	// that Save can write with SaveOptions: Train checks both before the
+	// first step.
 	CheckpointPath string
+	// SaveOptions are passed to Save for CheckpointPath; a model with a
+	// user-written part that does not describe itself needs
+	// AllowWeightsOnly here.
+	SaveOptions []SaveOption
 	// OnStep, if set, is called after every optimiser step.
 	OnStep func(StepInfo)
 	// OnEpoch, if set, is called after every epoch; a non-nil error stops
@@ -173,6 +180,9 @@ func (c *TrainConfig) validate(m *Model, data *dataset.Set) error {
 		}
 		if st, err := os.Stat(c.CheckpointPath); err == nil && st.IsDir() {
 			return configError("CheckpointPath", "%s is a directory", c.CheckpointPath)
+		}
+		if err := m.SaveTo(io.Discard, c.SaveOptions...); err != nil {
+			return configWrap("CheckpointPath", err)
 		}
 	}
 	if err := m.checkData("Train", data); err != nil {
@@ -342,7 +352,7 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 				bestParams = m.snapshot()
 			}
 			if cfg.CheckpointPath != "" {
-				if err := m.Save(cfg.CheckpointPath); err != nil {
+				if err := m.Save(cfg.CheckpointPath, cfg.SaveOptions...); err != nil {
 					return history, fmt.Errorf("vae.Train: epoch %d: %w", epoch, err)
 				}
 			}
