@@ -128,8 +128,8 @@ type planT[T float] struct {
 	dec     []leanOp[T]
 	decIn   int // D + classes
 	lik     likKind
-	sigma   float64        // Gaussian
-	logSig  *layers.Param  // learned Gaussian
+	sigma   float64       // Gaussian
+	logSig  *layers.Param // learned Gaussian
 	prior   priorKind
 	pParams []*layers.Param // diagonal: mean, logvar; mixture: logits, means, logvars; vamp: pseudo-inputs
 	comps   int             // mixture or vamp components
@@ -433,7 +433,7 @@ func (p *planT[T]) newWork() *leanWork[T] {
 	return w
 }
 
-func (p *planT[T]) getWork() *leanWork[T] { return p.pool.Get().(*leanWork[T]) }
+func (p *planT[T]) getWork() *leanWork[T]  { return p.pool.Get().(*leanWork[T]) }
 func (p *planT[T]) putWork(w *leanWork[T]) { p.pool.Put(w) }
 
 // run applies ops to rows records held at the start of w.a and returns

@@ -297,7 +297,7 @@ func TestLeanUserLayer(t *testing.T) {
 type userDense struct{ l layers.Layer }
 
 func (o userDense) Forward(s *layers.Scope, x *G.Node) (*G.Node, error) { return o.l.Forward(s, x) }
-func (o userDense) Params() []*layers.Param                            { return o.l.Params() }
+func (o userDense) Params() []*layers.Param                             { return o.l.Params() }
 
 // leanSquare is a user layer, dense followed by squaring, with a lean form.
 type leanSquare struct{ d *layers.Dense }
