@@ -53,6 +53,12 @@ func (p *planT[T]) evaluate(ctx context.Context, x []float64, labels []int, n in
 		}
 		return nil
 	}
+	return p.evaluateParallel(ctx, x, labels, n, *e, workers, chunks)
+}
+
+// evaluateParallel shares the chunks among workers goroutines. It takes e
+// by value so that the single-goroutine path keeps e on the caller's stack.
+func (p *planT[T]) evaluateParallel(ctx context.Context, x []float64, labels []int, n int, e leanEval, workers, chunks int) error {
 	var (
 		next   int
 		mu     sync.Mutex
@@ -81,7 +87,7 @@ func (p *planT[T]) evaluate(ctx context.Context, x []float64, labels []int, n in
 			defer p.putWork(w)
 			p.prepare(w)
 			for c := take(); c >= 0; c = take() {
-				p.evalChunk(w, x, labels, c*leanRows, min(leanRows, n-c*leanRows), e)
+				p.evalChunk(w, x, labels, c*leanRows, min(leanRows, n-c*leanRows), &e)
 			}
 		}()
 	}
