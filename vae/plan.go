@@ -75,7 +75,7 @@ type float interface{ ~float32 | ~float64 }
 
 // kernels are the dtype-specific functions a plan calls.
 type kernels[T float] struct {
-	gemm func(m, n, k int, a []T, lda int, b []T, ldb int, c []T, ldc int)
+	gemm func(transA bool, m, n, k int, a []T, lda int, b []T, ldb int, c []T, ldc int)
 	data func(t *tensor.Dense) []T
 	// forward runs a LeanLayer in this dtype.
 	forward func(l LeanLayer, in, out []T, rows int)
@@ -393,6 +393,8 @@ func (p *planT[T]) compileLayer(part string, l layers.Layer, in []int, ops []lea
 type leanWork[T float] struct {
 	a, b, tmp []T
 	x         []T // the records in the model's dtype, (rows, F)
+	headW     []T // the head's two weights side by side
+	headOut   []T // (rows, 2D)
 	mu, lv    []T // (rows, D)
 	z         []T // decoder input rows, (rows, D + classes)
 	eps       []T // one row of noise
@@ -420,6 +422,7 @@ func (p *planT[T]) newWork() *leanWork[T] {
 		zRec: make([]int, r), out: make([]T, r*p.f), rowLL: make([]float64, r), rowLW: make([]float64, r),
 		sumLL: make([]float64, r), kl: make([]float64, r), mc: make([]float64, r), lseM: make([]float64, r), lseS: make([]float64, r),
 		klDim: make([]float64, r*p.d),
+		headW: make([]T, max(p.head.in, p.vampHd.in)*2*p.d), headOut: make([]T, r*2*p.d),
 	}
 	if p.lik == likLearned {
 		w.likA, w.likB = make([]float64, p.f), make([]float64, p.f)
@@ -436,9 +439,28 @@ func (p *planT[T]) newWork() *leanWork[T] {
 func (p *planT[T]) getWork() *leanWork[T]  { return p.pool.Get().(*leanWork[T]) }
 func (p *planT[T]) putWork(w *leanWork[T]) { p.pool.Put(w) }
 
+// featureMajorRows is the number of rows from which a chain of dense
+// layers runs feature-major (see runFeatureMajor).
+const featureMajorRows = 16
+
+// denseChain reports whether ops holds only dense layers and activations.
+func denseChain[T float](ops []leanOp[T]) bool {
+	for _, op := range ops {
+		switch op.(type) {
+		case *denseOp[T], *actOp[T]:
+		default:
+			return false
+		}
+	}
+	return len(ops) > 0
+}
+
 // run applies ops to rows records held at the start of w.a and returns
 // the slice that holds the result (in w.a or w.b).
 func (p *planT[T]) run(ops []leanOp[T], w *leanWork[T], in []T, rows int) []T {
+	if rows >= featureMajorRows && denseChain(ops) {
+		return p.runFeatureMajor(ops, w, in, rows)
+	}
 	cur, next := in, w.b
 	for i, op := range ops {
 		out := next[:rows*op.width()]
@@ -451,6 +473,42 @@ func (p *planT[T]) run(ops []leanOp[T], w *leanWork[T], in []T, rows int) []T {
 		}
 	}
 	return cur
+}
+
+// runFeatureMajor runs a chain of dense layers on the transposed batch,
+// one row per feature and one column per record: each product is then
+// W^T H^T, whose inner loop runs along the records (long and contiguous)
+// instead of along a layer's units, which costs far fewer calls into the
+// product's inner loop per record. The result is transposed back.
+func (p *planT[T]) runFeatureMajor(ops []leanOp[T], w *leanWork[T], in []T, rows int) []T {
+	width := len(in) / rows
+	cur, next := w.b[:len(in)], w.a
+	transpose(cur, in, rows, width)
+	for _, op := range ops {
+		out := next[:rows*op.width()]
+		switch o := op.(type) {
+		case *denseOp[T]:
+			o.forwardFM(&p.k, cur, out, rows)
+		case *actOp[T]:
+			copy(out, cur[:len(out)])
+			activate(o.act, out)
+		}
+		cur, next = out, cur[:cap(cur)]
+		width = op.width()
+	}
+	res := next[:rows*width]
+	transpose(res, cur, width, rows)
+	return res
+}
+
+// transpose writes the (c, r) transpose of the row-major (r, c) src into dst.
+func transpose[T float](dst, src []T, r, c int) {
+	for i := 0; i < r; i++ {
+		row := src[i*c : (i+1)*c]
+		for j, v := range row {
+			dst[j*r+i] = v
+		}
+	}
 }
 
 // encodeRows encodes rows records already converted into w.x with their
@@ -480,7 +538,7 @@ func (p *planT[T]) encodeRows(w *leanWork[T], labels []int, rows int) {
 		}
 	}
 	h := p.run(p.enc, w, in, rows)
-	p.headRows(&p.head, h, w.mu[:rows*p.d], w.lv[:rows*p.d], rows)
+	p.headRows(w, &p.head, h, w.mu[:rows*p.d], w.lv[:rows*p.d], rows)
 }
 
 func oneHot[T float](dst []T, l int) {
@@ -489,13 +547,29 @@ func oneHot[T float](dst []T, l int) {
 }
 
 // headRows computes mu and the soft-clamped log-variance of rows feature
-// rows h.
-func (p *planT[T]) headRows(hp *headParams, h, mu, lv []T, rows int) {
-	d := hp.d
-	dense(&p.k, hp.muW, hp.muB, h, mu, rows, hp.in, d)
-	dense(&p.k, hp.lvW, hp.lvB, h, lv, rows, hp.in, d)
-	for i, r := range lv[:rows*d] {
-		lv[i] = softClamp(r)
+// rows h. The two maps run as one product: their weights are copied side
+// by side into scratch, (in, 2D), on every call (parameters may change
+// between calls; the copy costs less than a second product).
+func (p *planT[T]) headRows(w *leanWork[T], hp *headParams, h, mu, lv []T, rows int) {
+	d, in := hp.d, hp.in
+	mw, mb := p.k.data(hp.muW.Value), p.k.data(hp.muB.Value)
+	lw, lb := p.k.data(hp.lvW.Value), p.k.data(hp.lvB.Value)
+	wt := w.headW[:in*2*d]
+	for i := 0; i < in; i++ {
+		copy(wt[i*2*d:], mw[i*d:(i+1)*d])
+		copy(wt[i*2*d+d:], lw[i*d:(i+1)*d])
+	}
+	out := w.headOut[:rows*2*d]
+	for r := 0; r < rows; r++ {
+		copy(out[r*2*d:], mb[:d])
+		copy(out[r*2*d+d:], lb[:d])
+	}
+	p.k.gemm(false, rows, 2*d, in, h, in, wt, 2*d, out, 2*d)
+	for r := 0; r < rows; r++ {
+		copy(mu[r*d:(r+1)*d], out[r*2*d:r*2*d+d])
+		for j, v := range out[r*2*d+d : (r+1)*2*d] {
+			lv[r*d+j] = softClamp(v)
+		}
 	}
 }
 

@@ -452,7 +452,7 @@ func (p *planT[T]) prepare(w *leanWork[T]) {
 			in := w.a[:rows*p.vampIn]
 			copy(in, u[c0*p.vampIn:(c0+rows)*p.vampIn])
 			h := p.run(p.vampEnc, w, in, rows)
-			p.headRows(&p.vampHd, h, w.mu[:rows*d], w.lv[:rows*d], rows)
+			p.headRows(w, &p.vampHd, h, w.mu[:rows*d], w.lv[:rows*d], rows)
 			for i := 0; i < rows*d; i++ {
 				w.compMu[c0*d+i], w.compLV[c0*d+i] = float64(w.mu[i]), float64(w.lv[i])
 			}

@@ -15,7 +15,7 @@ func dense[T float](k *kernels[T], wp, bp *layers.Param, x, y []T, rows, in, out
 	for r := 0; r < rows; r++ {
 		copy(y[r*out:(r+1)*out], b[:out])
 	}
-	k.gemm(rows, out, in, x, in, w, out, y, out)
+	k.gemm(false, rows, out, in, x, in, w, out, y, out)
 }
 
 // denseOp is a Dense layer followed by an activation (Identity when none).
@@ -29,6 +29,21 @@ func (d *denseOp[T]) width() int   { return d.out }
 func (d *denseOp[T]) scratch() int { return 0 }
 func (d *denseOp[T]) forward(k *kernels[T], in, out, _ []T, rows int) {
 	dense(k, d.w, d.b, in, out, rows, d.in, d.out)
+	activate(d.act, out[:rows*d.out])
+}
+
+// forwardFM is forward on transposed rows: in is (in, rows), out (out,
+// rows), and out = W^T in + b.
+func (d *denseOp[T]) forwardFM(k *kernels[T], in, out []T, rows int) {
+	w, b := k.data(d.w.Value), k.data(d.b.Value)
+	for j := 0; j < d.out; j++ {
+		row := out[j*rows : (j+1)*rows]
+		bj := b[j]
+		for i := range row {
+			row[i] = bj
+		}
+	}
+	k.gemm(true, d.out, rows, d.in, w, d.out, in, rows, out, rows)
 	activate(d.act, out[:rows*d.out])
 }
 
@@ -50,9 +65,7 @@ func activate[T float](a layers.Activation, v []T) {
 	switch a {
 	case layers.ReLU:
 		for i, x := range v {
-			if !(x > 0) && x == x {
-				v[i] = 0
-			}
+			v[i] = max(x, 0) // branch-free; NaN stays NaN
 		}
 	case layers.LeakyReLU:
 		s := T(layers.LeakySlope)
@@ -140,7 +153,7 @@ func (c *convOp[T]) forward(k *kernels[T], in, out, tmp []T, rows int) {
 				y[o*area+i] = bo
 			}
 		}
-		k.gemm(co, area, ckk, w, ckk, col, area, y, area)
+		k.gemm(false, co, area, ckk, w, ckk, col, area, y, area)
 	}
 	activate(c.act, out[:rows*outW])
 }
