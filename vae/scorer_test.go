@@ -342,3 +342,20 @@ func TestScorerGraphFallback(t *testing.T) {
 		t.Fatalf("mean score through the graphs: %v, want ErrNotLean", err)
 	}
 }
+
+// TestScorerLargeK checks the streaming log-sum-exp over more samples than
+// one block of decoder rows holds (K = 150 > 64) against Model.Score.
+func TestScorerLargeK(t *testing.T) {
+	ctx := context.Background()
+	m := gaussModel(t, 2)
+	data := labelled(t, realSet(t, 3, 6, 4), 2)
+	want, err := m.Score(ctx, data, ScoreOptions{K: 150, Seed: 8})
+	if err != nil {
+		t.Fatal(err)
+	}
+	got, err := m.ScoreRecords(ctx, Records{X: data.Values(), Labels: data.Labels()}, ScorerOptions{K: 150, Seed: 8})
+	if err != nil {
+		t.Fatal(err)
+	}
+	checkNear(t, "K=150", got, want, 1e-12)
+}
