@@ -56,43 +56,37 @@ func (p *planT[T]) evaluate(ctx context.Context, x []float64, labels []int, n in
 	return p.evaluateParallel(ctx, x, labels, n, *e, workers, chunks)
 }
 
-// evaluateParallel shares the chunks among workers goroutines. It takes e
-// by value so that the single-goroutine path keeps e on the caller's stack.
+// evaluateParallel splits the chunks into workers contiguous ranges, one
+// goroutine each, with no shared state but the outputs (disjoint). It takes
+// e by value so that the single-goroutine path keeps e on the caller's
+// stack.
 func (p *planT[T]) evaluateParallel(ctx context.Context, x []float64, labels []int, n int, e leanEval, workers, chunks int) error {
-	var (
-		next   int
-		mu     sync.Mutex
-		wg     sync.WaitGroup
-		errOut error
-	)
-	take := func() int {
-		mu.Lock()
-		defer mu.Unlock()
-		if errOut != nil || next >= chunks {
-			return -1
-		}
-		if err := ctx.Err(); err != nil {
-			errOut = err
-			return -1
-		}
-		c := next
-		next++
-		return c
-	}
+	var wg sync.WaitGroup
+	errs := make([]error, workers)
 	for g := 0; g < workers; g++ {
+		from, to := g*chunks/workers, (g+1)*chunks/workers
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
 			w := p.getWork()
 			defer p.putWork(w)
 			p.prepare(w)
-			for c := take(); c >= 0; c = take() {
+			for c := from; c < to; c++ {
+				if err := ctx.Err(); err != nil {
+					errs[g] = err
+					return
+				}
 				p.evalChunk(w, x, labels, c*leanRows, min(leanRows, n-c*leanRows), &e)
 			}
 		}()
 	}
 	wg.Wait()
-	return errOut
+	for _, err := range errs {
+		if err != nil {
+			return err
+		}
+	}
+	return nil
 }
 
 // defaultWorkers is the number of goroutines a large call uses.
