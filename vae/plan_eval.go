@@ -49,7 +49,9 @@ func (p *planT[T]) evaluate(ctx context.Context, x []float64, labels []int, n in
 			if err := ctx.Err(); err != nil {
 				return err
 			}
-			p.evalChunk(w, x, labels, c*leanRows, min(leanRows, n-c*leanRows), e)
+			if err := p.evalChunk(ctx, w, x, labels, c*leanRows, min(leanRows, n-c*leanRows), e); err != nil {
+				return err
+			}
 		}
 		return nil
 	}
@@ -76,7 +78,10 @@ func (p *planT[T]) evaluateParallel(ctx context.Context, x []float64, labels []i
 					errs[g] = err
 					return
 				}
-				p.evalChunk(w, x, labels, c*leanRows, min(leanRows, n-c*leanRows), &e)
+				if err := p.evalChunk(ctx, w, x, labels, c*leanRows, min(leanRows, n-c*leanRows), &e); err != nil {
+					errs[g] = err
+					return
+				}
 			}
 		}()
 	}
@@ -100,7 +105,7 @@ func toT[T float](dst []T, src []float64) {
 }
 
 // evalChunk evaluates records first..first+n-1 (n <= leanRows).
-func (p *planT[T]) evalChunk(w *leanWork[T], x []float64, labels []int, first, n int, e *leanEval) {
+func (p *planT[T]) evalChunk(ctx context.Context, w *leanWork[T], x []float64, labels []int, first, n int, e *leanEval) error {
 	f, d, c := p.f, p.d, p.c
 	toT(w.x[:n*f], x[first*f:(first+n)*f])
 	var lab []int
@@ -148,6 +153,10 @@ func (p *planT[T]) evalChunk(w *leanWork[T], x []float64, labels []int, first, n
 				if rows == leanRows {
 					p.flush(w, e, first, rows, k, dens)
 					rows = 0
+					// Large K: stop between blocks of rows too.
+					if err := ctx.Err(); err != nil {
+						return err
+					}
 				}
 			}
 		}
@@ -203,6 +212,7 @@ func (p *planT[T]) evalChunk(w *leanWork[T], x []float64, labels []int, first, n
 			e.cols[first*f+j] /= fk
 		}
 	}
+	return nil
 }
 
 // seed restarts the noise generator for record r of the call: the stream

@@ -359,3 +359,15 @@ func TestScorerLargeK(t *testing.T) {
 	}
 	checkNear(t, "K=150", got, want, 1e-12)
 }
+
+// TestScorerCancel checks that a cancelled context stops a call.
+func TestScorerCancel(t *testing.T) {
+	m := gaussModel(t, 0)
+	x := realSet(t, 1, 6, 1).Values()
+	ctx, cancel := context.WithCancel(context.Background())
+	cancel()
+	s := newScorer(t, m, ScorerOptions{K: 1000})
+	if err := s.Score(ctx, make([]float64, 1), Records{X: x}, nil); !errors.Is(err, context.Canceled) {
+		t.Fatalf("cancelled call: %v, want context.Canceled", err)
+	}
+}
