@@ -92,7 +92,8 @@ func imageModel(t *testing.T, dt tensor.Dtype) *Model {
 	up := must(layers.NewUpsample("dec.up", 2))
 	conv2 := must(layers.NewConv2D("dec.conv", layers.Conv2DConfig{In: 4, Out: 3, Kernel: [2]int{2, 2}, Padding: [2]int{1, 1}, Activation: layers.LeakyReLU}, opt))
 	conv3 := must(layers.NewConv2D("dec.conv2", layers.Conv2DConfig{In: 3, Out: 1, Kernel: [2]int{2, 2}}, opt))
-	dec := must(layers.NewSequential("dec", decDense, layers.Softplus, reshape, up, conv2, conv3, layers.NewFlatten("dec.flat")))
+	// The ELU after the upsampling runs as an activation step of its own.
+	dec := must(layers.NewSequential("dec", decDense, layers.Softplus, reshape, up, layers.ELU, conv2, conv3, layers.NewFlatten("dec.flat")))
 	lik, err := losses.NewLearnedGaussian("lik", 36, dt)
 	if err != nil {
 		t.Fatal(err)
@@ -102,6 +103,35 @@ func imageModel(t *testing.T, dt tensor.Dtype) *Model {
 		t.Fatalf("New: %v", err)
 	}
 	return perturb(t, m, 3)
+}
+
+// seqModel is a flat model whose encoder has an activation after an MLP
+// that already ends in one (so it runs as a step of its own, also on the
+// feature-major path) and whose decoder is a Sequential of Dense layers.
+func seqModel(t *testing.T, dt tensor.Dtype) *Model {
+	t.Helper()
+	opt := layers.Options{Dtype: dt, Seed: 9}
+	mlp, err := layers.NewMLP("enc.mlp", layers.MLPConfig{Sizes: []int{8, 12, 10}, Output: layers.ReLU}, opt)
+	if err != nil {
+		t.Fatal(err)
+	}
+	d1, _ := layers.NewDense("enc.d", 10, 6, opt)
+	enc, err := layers.NewSequential("enc", mlp, layers.Sigmoid, d1, layers.Identity)
+	if err != nil {
+		t.Fatal(err)
+	}
+	head, _ := layers.NewGaussianHead("head", 6, 3, opt)
+	d2, _ := layers.NewDense("dec.a", 3, 7, opt)
+	d3, _ := layers.NewDense("dec.b", 7, 8, opt)
+	dec, err := layers.NewSequential("dec", d2, layers.Tanh, layers.Softplus, d3)
+	if err != nil {
+		t.Fatal(err)
+	}
+	m, err := New(Config{InputShape: []int{8}, Encoder: enc, Head: head, Decoder: dec, Dtype: dt})
+	if err != nil {
+		t.Fatal(err)
+	}
+	return perturb(t, m, 9)
 }
 
 func leanCases() []leanCase {
@@ -139,6 +169,7 @@ func leanCases() []leanCase {
 			return mustMLP(t, MLPConfig{Input: 8, Hidden: []int{10, 6}, Latent: 3, Activation: layers.LeakyReLU, Likelihood: losses.Gaussian{Sigma: 1.3}, Classes: 3, Dtype: dt, Seed: 6})
 		}, real},
 		{"conditional image conv", imageModel, real},
+		{"sequential with activation steps", seqModel, binary},
 	}
 }
 
@@ -327,5 +358,28 @@ func (l leanSquare) LeanForward64(in, out []float64, rows int) {
 			v := y.At(i, j) + b[j]
 			y.Set(i, j, v*v)
 		}
+	}
+}
+
+// TestLeanActivationSteps makes sure the equality cases above exercise
+// activations as steps of their own (not only fused into a layer).
+func TestLeanActivationSteps(t *testing.T) {
+	count := func(ops []leanOp[float64]) int {
+		n := 0
+		for _, op := range ops {
+			if _, ok := op.(*actOp[float64]); ok {
+				n++
+			}
+		}
+		return n
+	}
+	seq := mustPlan(t, seqModel(t, tensor.Float64)).p64
+	img := mustPlan(t, imageModel(t, tensor.Float64)).p64
+	if count(seq.enc) != 1 || count(seq.dec) != 1 || count(img.dec) != 1 {
+		t.Fatalf("activation steps: sequential encoder %d, decoder %d, image decoder %d; want 1 each",
+			count(seq.enc), count(seq.dec), count(img.dec))
+	}
+	if !denseChain(seq.enc) || denseChain(img.dec) {
+		t.Fatal("the sequential encoder should run feature-major on batches and the image decoder should not")
 	}
 }
