@@ -459,7 +459,7 @@ func denseChain[T float](ops []leanOp[T]) bool {
 // the slice that holds the result (in w.a or w.b).
 func (p *planT[T]) run(ops []leanOp[T], w *leanWork[T], in []T, rows int) []T {
 	if rows >= featureMajorRows && denseChain(ops) {
-		return p.runFeatureMajor(ops, w, in, rows)
+		return p.runFeatureMajor(ops, w, in, rows, true)
 	}
 	cur, next := in, w.b
 	for i, op := range ops {
@@ -479,8 +479,9 @@ func (p *planT[T]) run(ops []leanOp[T], w *leanWork[T], in []T, rows int) []T {
 // one row per feature and one column per record: each product is then
 // W^T H^T, whose inner loop runs along the records (long and contiguous)
 // instead of along a layer's units, which costs far fewer calls into the
-// product's inner loop per record. The result is transposed back.
-func (p *planT[T]) runFeatureMajor(ops []leanOp[T], w *leanWork[T], in []T, rows int) []T {
+// product's inner loop per record. With back, the result is transposed
+// back to one row per record; without, it is returned feature-major.
+func (p *planT[T]) runFeatureMajor(ops []leanOp[T], w *leanWork[T], in []T, rows int, back bool) []T {
 	width := len(in) / rows
 	cur, next := w.b[:len(in)], w.a
 	transpose(cur, in, rows, width)
@@ -495,6 +496,9 @@ func (p *planT[T]) runFeatureMajor(ops []leanOp[T], w *leanWork[T], in []T, rows
 		}
 		cur, next = out, cur[:cap(cur)]
 		width = op.width()
+	}
+	if !back {
+		return cur
 	}
 	res := next[:rows*width]
 	transpose(res, cur, width, rows)
@@ -537,6 +541,11 @@ func (p *planT[T]) encodeRows(w *leanWork[T], labels []int, rows int) {
 			oneHot(row[f:], labels[i])
 		}
 	}
+	if rows >= featureMajorRows && denseChain(p.enc) {
+		hT := p.runFeatureMajor(p.enc, w, in, rows, false)
+		p.headRowsFM(w, &p.head, hT, w.mu[:rows*p.d], w.lv[:rows*p.d], rows)
+		return
+	}
 	h := p.run(p.enc, w, in, rows)
 	p.headRows(w, &p.head, h, w.mu[:rows*p.d], w.lv[:rows*p.d], rows)
 }
@@ -552,13 +561,8 @@ func oneHot[T float](dst []T, l int) {
 // between calls; the copy costs less than a second product).
 func (p *planT[T]) headRows(w *leanWork[T], hp *headParams, h, mu, lv []T, rows int) {
 	d, in := hp.d, hp.in
-	mw, mb := p.k.data(hp.muW.Value), p.k.data(hp.muB.Value)
-	lw, lb := p.k.data(hp.lvW.Value), p.k.data(hp.lvB.Value)
-	wt := w.headW[:in*2*d]
-	for i := 0; i < in; i++ {
-		copy(wt[i*2*d:], mw[i*d:(i+1)*d])
-		copy(wt[i*2*d+d:], lw[i*d:(i+1)*d])
-	}
+	wt := p.headWeights(w, hp)
+	mb, lb := p.k.data(hp.muB.Value), p.k.data(hp.lvB.Value)
 	out := w.headOut[:rows*2*d]
 	for r := 0; r < rows; r++ {
 		copy(out[r*2*d:], mb[:d])
@@ -571,6 +575,43 @@ func (p *planT[T]) headRows(w *leanWork[T], hp *headParams, h, mu, lv []T, rows 
 			lv[r*d+j] = softClamp(v)
 		}
 	}
+}
+
+// headRowsFM is headRows on feature-major features hT, (in, rows).
+func (p *planT[T]) headRowsFM(w *leanWork[T], hp *headParams, hT, mu, lv []T, rows int) {
+	d, in := hp.d, hp.in
+	wt := p.headWeights(w, hp)
+	mb, lb := p.k.data(hp.muB.Value), p.k.data(hp.lvB.Value)
+	out := w.headOut[:rows*2*d]
+	for j := 0; j < 2*d; j++ {
+		bj := mb[j%d]
+		if j >= d {
+			bj = lb[j-d]
+		}
+		row := out[j*rows : (j+1)*rows]
+		for i := range row {
+			row[i] = bj
+		}
+	}
+	p.k.gemm(true, 2*d, rows, in, wt, 2*d, hT, rows, out, rows)
+	for j := 0; j < d; j++ {
+		for r := 0; r < rows; r++ {
+			mu[r*d+j] = out[j*rows+r]
+			lv[r*d+j] = softClamp(out[(d+j)*rows+r])
+		}
+	}
+}
+
+// headWeights copies the head's two weights side by side, (in, 2D).
+func (p *planT[T]) headWeights(w *leanWork[T], hp *headParams) []T {
+	d, in := hp.d, hp.in
+	mw, lw := p.k.data(hp.muW.Value), p.k.data(hp.lvW.Value)
+	wt := w.headW[:in*2*d]
+	for i := 0; i < in; i++ {
+		copy(wt[i*2*d:], mw[i*d:(i+1)*d])
+		copy(wt[i*2*d+d:], lw[i*d:(i+1)*d])
+	}
+	return wt
 }
 
 // softClamp is layers.SoftClamp with the head's bounds:
