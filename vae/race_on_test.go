@@ -1,0 +1,5 @@
+//go:build race
+
+package vae
+
+const raceEnabled = true
