@@ -46,7 +46,7 @@ func fileTransforms(t *testing.T, path string) (map[string]map[string]any, *safe
 	return out, f
 }
 
-func softplus(x float64) float64 { return math.Max(x, 0) + math.Log1p(math.Exp(-math.Abs(x))) }
+func refSoftplus(x float64) float64 { return math.Max(x, 0) + math.Log1p(math.Exp(-math.Abs(x))) }
 
 // The learned-sigma Gaussian: the file says how the stored parameter r maps
 // to log sigma (issue 8: a reader that took r as log sigma was off by about
@@ -85,7 +85,7 @@ func TestFormatRecordsLearnedSigmaTransform(t *testing.T) {
 	mean := []float64{0.31, -1.0, 1.5}
 	var fromFile, naive float64
 	for i := range x {
-		sigma := math.Exp(lo + softplus(stored[i]-lo)) // the recorded formula
+		sigma := math.Exp(lo + refSoftplus(stored[i]-lo)) // the recorded formula
 		fromFile += distuv.Normal{Mu: mean[i], Sigma: sigma}.LogProb(x[i])
 		naive += distuv.Normal{Mu: mean[i], Sigma: math.Exp(stored[i])}.LogProb(x[i])
 	}
@@ -153,7 +153,7 @@ func TestFormatRecordsLogVarClamp(t *testing.T) {
 		t.Fatal(err)
 	}
 	for j, b := range bias {
-		y := b + softplus(lo-b) - softplus(b-hi)
+		y := b + refSoftplus(lo-b) - refSoftplus(b-hi)
 		if want := math.Exp(y / 2); !relClose(sigma.At(0, j), want, 1e-12) {
 			t.Errorf("latent %d: Encode sigma %v, recomputed from the file %v (raw %v)", j, sigma.At(0, j), want, b)
 		}

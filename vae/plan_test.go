@@ -305,7 +305,7 @@ func TestLeanUserLayer(t *testing.T) {
 		return perturb(t, m, 7)
 	}
 	inner, _ := layers.NewDense("enc", 4, 5, layers.Options{Dtype: tensor.Float64, Seed: 3})
-	m := build(userDense{inner})
+	m := build(opaqueLayer{inner})
 	if _, ok, err := m.leanPlan(); ok || !errors.Is(err, ErrNotLean) {
 		t.Fatalf("user layer without LeanLayer: ok %v, err %v; want ErrNotLean", ok, err)
 	}
@@ -324,11 +324,11 @@ func TestLeanUserLayer(t *testing.T) {
 	checkNear(t, "Score", got, want, 1e-12)
 }
 
-// userDense wraps a layer without implementing LeanLayer.
-type userDense struct{ l layers.Layer }
+// opaqueLayer wraps a layer without implementing LeanLayer.
+type opaqueLayer struct{ l layers.Layer }
 
-func (o userDense) Forward(s *layers.Scope, x *G.Node) (*G.Node, error) { return o.l.Forward(s, x) }
-func (o userDense) Params() []*layers.Param                             { return o.l.Params() }
+func (o opaqueLayer) Forward(s *layers.Scope, x *G.Node) (*G.Node, error) { return o.l.Forward(s, x) }
+func (o opaqueLayer) Params() []*layers.Param                             { return o.l.Params() }
 
 // leanSquare is a user layer, dense followed by squaring, with a lean form.
 type leanSquare struct{ d *layers.Dense }

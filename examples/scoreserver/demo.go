@@ -6,15 +6,14 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
-	"strconv"
 	"time"
 
 	"gorgonia.org/tensor"
 
-	"lowerbound.dev/examples/internal/detect"
 	"lowerbound.dev/examples/internal/fleet"
 	"lowerbound.dev/losses"
 	"lowerbound.dev/vae"
+	"lowerbound.dev/vae/alarm"
 	"lowerbound.dev/vae/dataset"
 )
 
@@ -78,8 +77,11 @@ func trainDemo(ctx context.Context, out string, seed uint64, epochs int, size fl
 	if err != nil {
 		return "", err
 	}
-	threshold, err := detect.Quantile(valScores, 0.99)
+	cal, err := alarm.Calibrate(valScores, 0.01)
 	if err != nil {
+		return "", err
+	}
+	if err := alarm.Put(m, cal); err != nil {
 		return "", err
 	}
 	zJSON, err := json.Marshal(z)
@@ -92,8 +94,7 @@ func trainDemo(ctx context.Context, out string, seed uint64, epochs int, size fl
 		typeNames = append(typeNames, t.Name)
 	}
 	types, _ := json.Marshal(typeNames)
-	for k, v := range map[string]string{extraStandardizer: string(zJSON), extraFeatures: string(names), extraTypes: string(types),
-		extraThreshold: strconv.FormatFloat(threshold, 'g', -1, 64)} {
+	for k, v := range map[string]string{extraStandardizer: string(zJSON), extraFeatures: string(names), extraTypes: string(types)} {
 		if err := m.SetExtra(k, v); err != nil {
 			return "", err
 		}

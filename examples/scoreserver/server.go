@@ -19,17 +19,18 @@ import (
 
 	"lowerbound.dev/layers"
 	"lowerbound.dev/vae"
+	"lowerbound.dev/vae/alarm"
 	"lowerbound.dev/vae/dataset"
 )
 
 // Checkpoint metadata keys, the telemetry example's: the standardisation
 // of the raw readings, the feature (sensor) names, the label (station
-// type) names and the alarm threshold in nats.
+// type) names. The alarm threshold is the vae/alarm calibration stored
+// under alarm.MetadataKey, when the checkpoint has one.
 const (
 	extraStandardizer = "telemetry.standardizer"
 	extraFeatures     = "telemetry.features"
 	extraTypes        = "telemetry.station_types"
-	extraThreshold    = "telemetry.threshold"
 )
 
 // Options configures a server.
@@ -93,10 +94,11 @@ func load(path string, opt Options) (*loaded, error) {
 			}
 		}
 	}
-	if s, ok := extra[extraThreshold]; ok {
-		if l.threshold, err = strconv.ParseFloat(s, 64); err != nil {
-			return nil, fmt.Errorf("%s: metadata %s: %w", path, extraThreshold, err)
-		}
+	switch cal, err := alarm.Get(m); {
+	case err == nil:
+		l.threshold = cal.Threshold()
+	case !errors.Is(err, alarm.ErrNoCalibration):
+		return nil, fmt.Errorf("%s: %w", path, err)
 	}
 	if l.scorer, err = m.NewScorer(vae.ScorerOptions{K: opt.K, Seed: opt.Seed, Mean: opt.Mean}); err != nil {
 		return nil, err

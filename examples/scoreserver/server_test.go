@@ -25,6 +25,7 @@ import (
 
 	"lowerbound.dev/losses"
 	"lowerbound.dev/vae"
+	"lowerbound.dev/vae/alarm"
 	"lowerbound.dev/vae/dataset"
 )
 
@@ -48,10 +49,23 @@ func writeCheckpoint(t testing.TB, path string, seed uint64) *vae.Model {
 	z, _ := json.Marshal(testStd)
 	for k, v := range map[string]string{extraStandardizer: string(z),
 		extraFeatures: `["flow_m3h","suction_bar","discharge_bar","bearing_de_c","bearing_nde_c","winding_c","vib_x_mms","vib_y_mms","vib_z_mms","current_a","power_kw","speed_rpm"]`,
-		extraTypes:    `["booster","district","transfer"]`, extraThreshold: "25"} {
+		extraTypes:    `["booster","district","transfer"]`} {
 		if err := m.SetExtra(k, v); err != nil {
 			t.Fatal(err)
 		}
+	}
+	// A calibration whose threshold is 25: for n = 99 and alpha = 1% the
+	// split-conformal rank is ceil((n+1)(1-alpha)) = 99, the largest score.
+	cal := make([]float64, 99)
+	for i := range cal {
+		cal[i] = float64(i+1) * 25 / 99
+	}
+	c, err := alarm.Calibrate(cal, 0.01)
+	if err != nil || c.Threshold() != 25 {
+		t.Fatalf("calibration: threshold %v, %v", c.Threshold(), err)
+	}
+	if err := alarm.Put(m, c); err != nil {
+		t.Fatal(err)
 	}
 	if err := m.Save(path); err != nil {
 		t.Fatal(err)
