@@ -52,6 +52,14 @@ var kernels = []kernel{
 	// far below the float32 tolerance; for x < -709 e^-x overflows and the
 	// quotient is 0, which is also the float32 result there.
 	{"Sigmoid32", Sigmoid32, func(x float64) float64 { return 1 / (1 + math.Exp(-x)) }},
+	// log(1 + e^x) from math.Log1p and math.Exp in float64, written as
+	// x + log1p(e^-x) for x > 0 (the same value, without overflow).
+	{"Log1pExp32", Log1pExp32, func(x float64) float64 {
+		if x > 0 {
+			return x + math.Log1p(math.Exp(-x))
+		}
+		return math.Log1p(math.Exp(x))
+	}},
 }
 
 // TestKernelsSweep compares each kernel with the float64 function of
@@ -139,6 +147,8 @@ func TestSpecialValues(t *testing.T) {
 			next(0x1p-29, 0), -1, next(-1, 0), -2, next(-1, -inf), 1, math.MaxFloat32, -math.MaxFloat32, inf, -inf, nan},
 		"Tanh32": {0, float32(math.Copysign(0, -1)), 0x1p-149, -0x1p-149, 0x1p-13, next(0x1p-13, 0), 1e-30,
 			9.5, next(9.5, inf), -9.5, 20, math.MaxFloat32, -math.MaxFloat32, inf, -inf, nan},
+		"Log1pExp32": {0, float32(math.Copysign(0, -1)), 0x1p-149, -0x1p-149, 1, -1, 20, -20, 104, next(104, inf), -104,
+			next(-104, 0), next(-104, -inf), -103.27893, -87.336544, math.MaxFloat32, -math.MaxFloat32, inf, -inf, nan},
 		"Sigmoid32": {0, float32(math.Copysign(0, -1)), 18, next(18, inf), -18, -104, next(-104, 0), -103.27893,
 			-87.336544, math.MaxFloat32, -math.MaxFloat32, inf, -inf, nan},
 	}
@@ -185,3 +195,10 @@ func BenchmarkMath32Log1p(b *testing.B) { benchKernel(b, math32.Log1p, 0, 1) }
 func BenchmarkTanh32(b *testing.B)      { benchKernel(b, Tanh32, -5, 5) }
 func BenchmarkMath32Tanh(b *testing.B)  { benchKernel(b, math32.Tanh, -5, 5) }
 func BenchmarkSigmoid32(b *testing.B)   { benchKernel(b, Sigmoid32, -10, 10) }
+func BenchmarkLog1pExp32(b *testing.B)  { benchKernel(b, Log1pExp32, -20, 0) }
+
+// BenchmarkMath32Log1pExp is the float32 softplus tail as the Bernoulli op
+// computed it before this package: math32.Log1p(math32.Exp(x)).
+func BenchmarkMath32Log1pExp(b *testing.B) {
+	benchKernel(b, func(x float32) float32 { return math32.Log1p(math32.Exp(x)) }, -20, 0)
+}
