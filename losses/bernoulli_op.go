@@ -268,3 +268,239 @@ func denseInputs(name string, arity int, vals ...G.Value) ([2]*tensor.Dense, *te
 	}
 	return [2]*tensor.Dense{ds[0], ds[1]}, ds[arity-1], nil
 }
+
+// The Bernoulli likelihood of a record is the sum of its F per-feature
+// terms. bernoulliRowsOp computes those sums directly, so that training
+// needs neither the (N, F) tensor of terms nor gorgonia's sum over features,
+// whose gradient broadcasts the (N) incoming gradient into a newly
+// allocated (N, F) tensor at every step:
+//
+//	forward:  s_r = sum_f x_rf*l_rf - softplus(l_rf)
+//	backward: ds/dl_rf = g_r*(x_rf - sigmoid(l_rf)),  ds/dx_rf = g_r*l_rf
+
+// bernoulliPerSample returns the (N) per-record Bernoulli log-likelihoods
+// of the (N, F) observations x under the logits: the same values as
+// PerSample(BernoulliLogProb(x, logits)), with the same argument checks,
+// as one op.
+func bernoulliPerSample(x, logits *G.Node) (*G.Node, error) {
+	const where = "losses.BernoulliLogProb"
+	if err := checkMatrix(where, "x", x); err != nil {
+		return nil, err
+	}
+	if err := checkSame(where, "logits", logits, "x", x); err != nil {
+		return nil, err
+	}
+	out, err := G.ApplyOp(&bernoulliRowsOp{}, x, logits)
+	if err != nil {
+		return nil, opError(where, "Bernoulli", err)
+	}
+	return out, nil
+}
+
+type bernoulliRowsOp struct{ out *tensor.Dense }
+
+func (*bernoulliRowsOp) Arity() int { return 2 }
+
+func (*bernoulliRowsOp) Type() hm.Type {
+	a := hm.TypeVariable('a')
+	t := G.TensorType{Dims: 2, Of: a}
+	return hm.NewFnType(t, t, G.TensorType{Dims: 1, Of: a})
+}
+
+func (*bernoulliRowsOp) InferShape(in ...G.DimSizer) (tensor.Shape, error) {
+	s, err := sameShape("Bernoulli", in...)
+	if err != nil {
+		return nil, err
+	}
+	return tensor.Shape{s[0]}, nil
+}
+
+func (op *bernoulliRowsOp) Do(vals ...G.Value) (G.Value, error) {
+	in, l, err := denseInputs("Bernoulli", 2, vals...)
+	if err != nil {
+		return nil, err
+	}
+	sh := l.Shape()
+	if sh.Dims() != 2 {
+		return nil, fmt.Errorf("losses: Bernoulli: logits of shape %v, want (N, F)", sh)
+	}
+	n, f := sh[0], sh[1]
+	if op.out == nil || op.out.Dtype() != l.Dtype() || op.out.Size() != n {
+		op.out = tensor.New(tensor.WithShape(n), tensor.Of(l.Dtype()))
+	}
+	switch s := op.out.Data().(type) {
+	case []float64:
+		xs, ls := in[0].Data().([]float64), l.Data().([]float64)
+		for r := 0; r < n; r++ {
+			var acc float64
+			xr, lr := xs[r*f:(r+1)*f], ls[r*f:(r+1)*f]
+			for i, li := range lr {
+				acc += (xr[i]*li - math.Max(li, 0)) - math.Log1p(math.Exp(-math.Abs(li)))
+			}
+			s[r] = acc
+		}
+	case []float32:
+		xs, ls := in[0].Data().([]float32), l.Data().([]float32)
+		for r := 0; r < n; r++ {
+			// Accumulate in float64: a record sums hundreds of terms.
+			var acc float64
+			xr, lr := xs[r*f:(r+1)*f], ls[r*f:(r+1)*f]
+			for i, li := range lr {
+				relu, negAbs := li, -li
+				if li < 0 {
+					relu, negAbs = 0, li
+				}
+				acc += float64((xr[i]*li - relu) - vecmath.Log1pExp32(negAbs))
+			}
+			s[r] = float32(acc)
+		}
+	default:
+		return nil, fmt.Errorf("losses: Bernoulli: dtype %v is not float32 or float64", l.Dtype())
+	}
+	return op.out, nil
+}
+
+func (*bernoulliRowsOp) DiffWRT(inputs int) []bool { return []bool{true, true} }
+
+func (*bernoulliRowsOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
+	if len(inputs) != 2 {
+		return nil, fmt.Errorf("losses: Bernoulli: want 2 inputs, have %d", len(inputs))
+	}
+	x, l := inputs[0], inputs[1]
+	gx, err := G.ApplyOp(&bernoulliRowsGradOp{wrtX: true}, x, l, grad)
+	if err != nil {
+		return nil, err
+	}
+	gl, err := G.ApplyOp(&bernoulliRowsGradOp{}, x, l, grad)
+	if err != nil {
+		return nil, err
+	}
+	return G.Nodes{gx, gl}, nil
+}
+
+func (*bernoulliRowsOp) ReturnsPtr() bool      { return false }
+func (*bernoulliRowsOp) CallsExtern() bool     { return false }
+func (*bernoulliRowsOp) OverwritesInput() int  { return -1 }
+func (*bernoulliRowsOp) WriteHash(h hash.Hash) { fmt.Fprint(h, "lowerbound.losses.bernoulli_rows") }
+func (op *bernoulliRowsOp) Hashcode() uint32   { return opHash(op) }
+func (*bernoulliRowsOp) String() string        { return "BernoulliLogProbRows" }
+
+// bernoulliRowsGradOp computes, from (x, l, g) with g of shape (N), either
+// g_r*(x_rf - sigmoid(l_rf)) (the gradient with respect to the logits) or,
+// with wrtX, g_r*l_rf (with respect to x). It has no gradient of its own.
+type bernoulliRowsGradOp struct {
+	wrtX bool
+	out  *tensor.Dense
+}
+
+func (*bernoulliRowsGradOp) Arity() int { return 3 }
+
+func (*bernoulliRowsGradOp) Type() hm.Type {
+	a := hm.TypeVariable('a')
+	t := G.TensorType{Dims: 2, Of: a}
+	return hm.NewFnType(t, t, G.TensorType{Dims: 1, Of: a}, t)
+}
+
+func (*bernoulliRowsGradOp) InferShape(in ...G.DimSizer) (tensor.Shape, error) {
+	if len(in) != 3 {
+		return nil, fmt.Errorf("losses: Bernoulli gradient: want 3 inputs, have %d", len(in))
+	}
+	return sameShape("Bernoulli gradient", in[:2]...)
+}
+
+func (op *bernoulliRowsGradOp) Do(vals ...G.Value) (G.Value, error) {
+	if len(vals) != 3 {
+		return nil, fmt.Errorf("losses: Bernoulli gradient: want 3 inputs, have %d", len(vals))
+	}
+	in, l, err := denseInputs("Bernoulli gradient", 2, vals[:2]...)
+	if err != nil {
+		return nil, err
+	}
+	g, ok := vals[2].(*tensor.Dense)
+	sh := l.Shape()
+	if !ok || sh.Dims() != 2 || g.Size() != sh[0] || g.Dtype() != l.Dtype() {
+		return nil, fmt.Errorf("losses: Bernoulli gradient: incoming gradient %v does not match logits of shape %v", vals[2], sh)
+	}
+	if g.IsView() {
+		g = g.Materialize().(*tensor.Dense)
+	}
+	f := sh[1]
+	op.out = reuse(op.out, l)
+	switch o := op.out.Data().(type) {
+	case []float64:
+		xs, ls, gs := in[0].Data().([]float64), l.Data().([]float64), g.Data().([]float64)
+		for r, gr := range gs {
+			lo, hi := r*f, (r+1)*f
+			if op.wrtX {
+				for i, li := range ls[lo:hi] {
+					o[lo+i] = gr * li
+				}
+				continue
+			}
+			bernoulliBackwardRow64(o[lo:hi], xs[lo:hi], ls[lo:hi], gr)
+		}
+	case []float32:
+		xs, ls, gs := in[0].Data().([]float32), l.Data().([]float32), g.Data().([]float32)
+		for r, gr := range gs {
+			lo, hi := r*f, (r+1)*f
+			if op.wrtX {
+				for i, li := range ls[lo:hi] {
+					o[lo+i] = gr * li
+				}
+				continue
+			}
+			bernoulliBackwardRow32(o[lo:hi], xs[lo:hi], ls[lo:hi], gr)
+		}
+	default:
+		return nil, fmt.Errorf("losses: Bernoulli gradient: dtype %v is not float32 or float64", l.Dtype())
+	}
+	return op.out, nil
+}
+
+func bernoulliBackwardRow64(out, x, l []float64, g float64) {
+	x, out = x[:len(l)], out[:len(l)]
+	for i, li := range l {
+		var d float64
+		if li >= 0 {
+			e := math.Exp(-li)
+			d = (x[i] - 1) + e/(1+e)
+		} else {
+			e := math.Exp(li)
+			d = x[i] - e/(1+e)
+		}
+		out[i] = g * d
+	}
+}
+
+func bernoulliBackwardRow32(out, x, l []float32, g float32) {
+	x, out = x[:len(l)], out[:len(l)]
+	for i, li := range l {
+		var d float32
+		if li >= 0 {
+			d = (x[i] - 1) + vecmath.Sigmoid32(-li)
+		} else {
+			d = x[i] - vecmath.Sigmoid32(li)
+		}
+		out[i] = g * d
+	}
+}
+
+func (*bernoulliRowsGradOp) DiffWRT(inputs int) []bool { return make([]bool, inputs) }
+
+func (*bernoulliRowsGradOp) SymDiff(G.Nodes, *G.Node, *G.Node) (G.Nodes, error) {
+	return nil, fmt.Errorf("losses: Bernoulli gradient: no second derivative")
+}
+
+func (*bernoulliRowsGradOp) ReturnsPtr() bool     { return false }
+func (*bernoulliRowsGradOp) CallsExtern() bool    { return false }
+func (*bernoulliRowsGradOp) OverwritesInput() int { return -1 }
+func (op *bernoulliRowsGradOp) WriteHash(h hash.Hash) {
+	fmt.Fprintf(h, "lowerbound.losses.bernoulli_rows_grad(%t)", op.wrtX)
+}
+func (op *bernoulliRowsGradOp) Hashcode() uint32 { return opHash(op) }
+func (op *bernoulliRowsGradOp) String() string {
+	if op.wrtX {
+		return "BernoulliLogProbRowsGradX"
+	}
+	return "BernoulliLogProbRowsGrad"
+}
