@@ -154,19 +154,19 @@ func log1p64(d float64) float64 {
 // the tests).
 func Log1pExp32(x float32) float32 {
 	d := float64(x)
-	switch {
-	case x != x:
-		return x
-	case d > 104:
-		// log(1 + e^x) = x + log1p(e^-x) and e^-x < 2^-150 is far below
-		// half an ulp of x.
-		return x
-	case d < -104:
+	if !(d >= -104) {
+		if x != x {
+			return x
+		}
 		// log(1 + e^x) < e^x < e^-104, which rounds to zero.
 		return 0
 	}
-	a := math.Abs(d)
-	k, r := reduce(-a)
+	if d > 104 {
+		// log(1 + e^x) = x + log1p(e^-x) and e^-x < 2^-150 is far below
+		// half an ulp of x.
+		return x
+	}
+	k, r := reduce(-math.Abs(d))
 	t := log1p64((1 + expm1Reduced(r)) * pow2(k)) // log1p(e^-|x|)
 	if d > 0 {
 		t += d
@@ -184,20 +184,22 @@ func Log1pExp32(x float32) float32 {
 func Tanh32(x float32) float32 {
 	d := float64(x)
 	a := math.Abs(d)
-	switch {
-	case a < 0x1p-13:
+	if !(a >= 0x1p-13) {
 		// tanh(x) = x*(1 - x^2/3 + ...), |x^2/3| < 2^-27: x is the correctly
-		// rounded result (±0 included).
-		return x
-	case a > 9.5:
-		// 1 - tanh(9.5) = 2/(e^19 + 1) < 2^-26, below half an ulp of 1;
-		// also covers ±Inf. NaN fails both comparisons and falls through.
-		return float32(math.Copysign(1, d))
-	case x != x:
+		// rounded result (±0 included). NaN returns itself here too.
 		return x
 	}
+	if a > 9.5 {
+		// 1 - tanh(9.5) = 2/(e^19 + 1) < 2^-26, below half an ulp of 1;
+		// also covers ±Inf.
+		return float32(math.Copysign(1, d))
+	}
 	em := expm1x64(2 * a)
-	return float32(math.Copysign(em/(em+2), d))
+	t := em / (em + 2)
+	if d < 0 {
+		t = -t
+	}
+	return float32(t)
 }
 
 // Sigmoid32 returns 1/(1 + e^-x) rounded to float32, evaluated without
@@ -208,15 +210,16 @@ func Tanh32(x float32) float32 {
 // the tests).
 func Sigmoid32(x float32) float32 {
 	d := float64(x)
-	switch {
-	case x != x:
-		return x
-	case d > 18:
-		// 1 - sigmoid(18) = 1.5e-8 < 2^-25, half an ulp below 1.
-		return 1
-	case d < -104:
+	if !(d >= -104) {
+		if x != x {
+			return x
+		}
 		// sigmoid(x) < e^x < 2^-150.
 		return 0
+	}
+	if d > 18 {
+		// 1 - sigmoid(18) = 1.5e-8 < 2^-25, half an ulp below 1.
+		return 1
 	}
 	k, r := reduce(-d)
 	e := (1 + expm1Reduced(r)) * pow2(k) // e^-x, at most e^104
