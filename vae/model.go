@@ -95,6 +95,9 @@ type Model struct {
 	cfg    Config
 	dtype  tensor.Dtype
 	width  int // F, values per record
+	// outWidth is the decoder's outputs per record: F, or the
+	// likelihood's OutputWidth (a columns likelihood with categories).
+	outWidth int
 	latent int
 	params []*layers.Param
 	// owned holds every listed parameter: a graph may bind no other (see
@@ -164,7 +167,19 @@ func New(cfg Config) (*Model, error) {
 	if cfg.Prior.Dim() != latent {
 		return nil, configError("Prior", "dimension %d differs from the head's latent size %d", cfg.Prior.Dim(), latent)
 	}
-	m := &Model{cfg: cfg, dtype: cfg.Dtype, width: width, latent: latent, pools: map[programKey][]*program{}}
+	outWidth := width
+	if ow, ok := cfg.Likelihood.(interface{ OutputWidth() int }); ok {
+		outWidth = ow.OutputWidth()
+		if outWidth < 1 {
+			return nil, configError("Likelihood", "output width %d, want >= 1", outWidth)
+		}
+	}
+	if cl, ok := cfg.Likelihood.(*losses.Columns); ok {
+		if n := len(cl.Schema()); n != width || len(cfg.InputShape) != 1 {
+			return nil, configError("Likelihood", "%d columns, and InputShape %v: want flat records of one value per column", n, cfg.InputShape)
+		}
+	}
+	m := &Model{cfg: cfg, dtype: cfg.Dtype, width: width, outWidth: outWidth, latent: latent, pools: map[programKey][]*program{}}
 	seen := map[string]string{}
 	m.owned = map[*layers.Param]bool{}
 	add := func(part string, ps []*layers.Param) error {

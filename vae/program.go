@@ -158,12 +158,12 @@ func (m *Model) build(key programKey) (*program, error) {
 		if err := owns("Decoder"); err != nil {
 			return nil, err
 		}
-		os := out.Shape()
-		if os[0] != rows || os.TotalSize() != rows*f {
-			return nil, wrap("decoder", fmt.Errorf("output shape %v, want %d rows of %d values", os, rows, f))
+		os, ow := out.Shape(), m.outWidth
+		if os[0] != rows || os.TotalSize() != rows*ow {
+			return nil, wrap("decoder", fmt.Errorf("output shape %v, want %d rows of %d values", os, rows, ow))
 		}
 		if os.Dims() != 2 {
-			if out, err = G.Reshape(out, tensor.Shape{rows, f}); err != nil {
+			if out, err = G.Reshape(out, tensor.Shape{rows, ow}); err != nil {
 				return nil, wrap("decoder output", err)
 			}
 		}
