@@ -92,14 +92,14 @@ type Config struct {
 // Reconstruct, Score, Evaluate, ...) are safe for concurrent use; Train must
 // not run at the same time as any other method.
 type Model struct {
-	cfg    Config
-	dtype  tensor.Dtype
-	width  int // F, values per record
+	cfg   Config
+	dtype tensor.Dtype
+	width int // F, values per record
 	// outWidth is the decoder's outputs per record: F, or the
 	// likelihood's OutputWidth (a columns likelihood with categories).
 	outWidth int
-	latent int
-	params []*layers.Param
+	latent   int
+	params   []*layers.Param
 	// owned holds every listed parameter: a graph may bind no other (see
 	// program.owns), so the model trains, saves, snapshots and restores
 	// the same set.
