@@ -437,3 +437,75 @@ func toFloat64(d any) []float64 {
 	}
 	return nil
 }
+
+// EncoderWidth returns the values per record of the model-input layout
+// that EncodeRow writes: OutputWidth values for the columns (a categorical
+// column one-hot) and one mask value per column.
+func (c *Columns) EncoderWidth() int { return c.width + len(c.cols) }
+
+// EncodeRow writes the model-input layout of one record x (one value per
+// column, NaN where missing) into dst (EncoderWidth values): per column a
+// real value as is, log x of a positive value, log(1 + x) of a count, a
+// binary value as is, the one-hot vector of a category, all zeros for a
+// missing entry; then the observation mask, 1 observed and 0 missing
+// (Nazabal et al. 2020: the encoder sees the zero-filled record and its
+// mask). A value outside its column's support is written as missing.
+func (c *Columns) EncodeRow(x, dst []float64) {
+	nc := len(c.cols)
+	for k := range dst[:c.width+nc] {
+		dst[k] = 0
+	}
+	for j, col := range c.cols {
+		v := x[j]
+		if math.IsNaN(v) || c.support(j, v) != "" {
+			continue
+		}
+		o := c.offs[j]
+		switch col.Kind {
+		case ColumnPositive:
+			dst[o] = math.Log(v)
+		case ColumnCount:
+			dst[o] = math.Log1p(v)
+		case ColumnCategorical:
+			dst[o+int(v)] = 1
+		default:
+			dst[o] = v
+		}
+		dst[c.width+j] = 1
+	}
+}
+
+// CheckValue reports why v cannot be a value of column j ("" when it can;
+// NaN, a missing entry, can).
+func (c *Columns) CheckValue(j int, v float64) string {
+	if math.IsNaN(v) {
+		return ""
+	}
+	return c.support(j, v)
+}
+
+func (c *Columns) support(j int, v float64) string {
+	col := c.cols[j]
+	if math.IsInf(v, 0) {
+		return "is not finite"
+	}
+	switch col.Kind {
+	case ColumnPositive:
+		if !(v > 0) {
+			return "is not > 0 (a positive column)"
+		}
+	case ColumnCount:
+		if v < 0 || v != math.Floor(v) {
+			return "is not a count 0, 1, 2, ..."
+		}
+	case ColumnBinary:
+		if v != 0 && v != 1 {
+			return "is not 0 or 1 (a binary column)"
+		}
+	case ColumnCategorical:
+		if v < 0 || v != math.Floor(v) || v >= float64(col.Categories) {
+			return fmt.Sprintf("is not a category index 0..%d", col.Categories-1)
+		}
+	}
+	return ""
+}

@@ -98,8 +98,11 @@ type Model struct {
 	// outWidth is the decoder's outputs per record: F, or the
 	// likelihood's OutputWidth (a columns likelihood with categories).
 	outWidth int
-	latent   int
-	params   []*layers.Param
+	// cols is the likelihood when it is a losses.Columns: the encoder
+	// then sees the model-input layout and missing entries are skipped.
+	cols   *losses.Columns
+	latent int
+	params []*layers.Param
 	// owned holds every listed parameter: a graph may bind no other (see
 	// program.owns), so the model trains, saves, snapshots and restores
 	// the same set.
@@ -108,7 +111,7 @@ type Model struct {
 	mu    sync.Mutex
 	pools map[programKey][]*program
 	// builds counts the programs compiled, per kind (read by tests).
-	builds [kindReconstruct + 1]atomic.Int64
+	builds [kindDecodeRaw + 1]atomic.Int64
 	// engine is held for writing while acquire compiles a program and
 	// for reading while a program runs: gorgonia's NewTapeMachine writes
 	// the engine field of every tensor bound to the graph, the shared
@@ -174,12 +177,13 @@ func New(cfg Config) (*Model, error) {
 			return nil, configError("Likelihood", "output width %d, want >= 1", outWidth)
 		}
 	}
-	if cl, ok := cfg.Likelihood.(*losses.Columns); ok {
-		if n := len(cl.Schema()); n != width || len(cfg.InputShape) != 1 {
+	cols, _ := cfg.Likelihood.(*losses.Columns)
+	if cols != nil {
+		if n := len(cols.Schema()); n != width || len(cfg.InputShape) != 1 {
 			return nil, configError("Likelihood", "%d columns, and InputShape %v: want flat records of one value per column", n, cfg.InputShape)
 		}
 	}
-	m := &Model{cfg: cfg, dtype: cfg.Dtype, width: width, outWidth: outWidth, latent: latent, pools: map[programKey][]*program{}}
+	m := &Model{cfg: cfg, dtype: cfg.Dtype, width: width, outWidth: outWidth, cols: cols, latent: latent, pools: map[programKey][]*program{}}
 	seen := map[string]string{}
 	m.owned = map[*layers.Param]bool{}
 	add := func(part string, ps []*layers.Param) error {
