@@ -59,9 +59,14 @@ held-out normal days, then scores a test period with injected faults
 (bearing wear, cavitation, a stuck sensor). Reports per fault type the
 precision and recall at the threshold and under batch screening at a target
 false discovery rate (Benjamini-Hochberg, -fdr), the false-alarm rate seen
-on normal test records with its interval, and a drift check per window of
--drift-days. Writes scores.png, roc.png, model.safetensors (with the alarm
-calibration) and scores.csv to -out.
+on normal test records with its interval, a drift check per window of
+-drift-days, the inputs that drive each fault's alarms and an imputation
+comparison. Records are mixed (sensors, an operating mode, a start count);
+-missing drops readings out. Writes scores.png, roc.png, model.safetensors
+(with the alarm calibration) and scores.csv to -out.
+
+With -train FILE -score FILE [-schema FILE] the same screening runs on
+your own CSV files instead of the invented fleet.
 
 The scores are a screening aid, not a protection system: alarms, trips and
 inspections follow the site's own procedures, local codes and qualified
