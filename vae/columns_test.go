@@ -413,3 +413,28 @@ func TestColumnsModelEndToEnd(t *testing.T) {
 		t.Errorf("ScoreColumns on a Bernoulli model: err = %v", err)
 	}
 }
+
+// A ragged last batch is padded with rows that must not count: for a
+// positive column a zero padding value is outside the support (log-prob
+// -Inf) and -Inf times a zero weight is NaN. Padding rows are all missing.
+func TestColumnsRaggedBatchPositive(t *testing.T) {
+	lik, err := losses.NewColumns("lik", []losses.Column{{Kind: losses.ColumnPositive}, {Kind: losses.ColumnCount}}, tensor.Float32)
+	if err != nil {
+		t.Fatal(err)
+	}
+	m, err := vae.NewMLP(vae.MLPConfig{Input: 2, Hidden: []int{4}, Latent: 1, Likelihood: lik, Seed: 1})
+	if err != nil {
+		t.Fatal(err)
+	}
+	x := make([]float64, 0, 2*13)
+	for i := 0; i < 13; i++ {
+		x = append(x, 1+float64(i)/10, float64(i%3))
+	}
+	data, err := dataset.New(x, 13, 2)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := m.Train(context.Background(), data, vae.TrainConfig{Epochs: 1, BatchSize: 8, Seed: 1}); err != nil {
+		t.Fatalf("13 records in batches of 8: %v", err)
+	}
+}

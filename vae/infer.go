@@ -172,6 +172,10 @@ func (m *Model) fillInputs(p *program, data *dataset.Set, idx []int) error {
 			return err
 		}
 		if p.xEnc != nil {
+			// Padding rows of a columns model are all missing, so
+			// they add exactly 0 (a zero could be outside a column's
+			// support, and -Inf times a zero weight is NaN).
+			fillRange(p.x, len(idx)*m.width, b*m.width, math.NaN())
 			m.encodeInputs(p, len(idx))
 		}
 		if p.xRep != nil {
