@@ -438,3 +438,80 @@ func TestColumnsRaggedBatchPositive(t *testing.T) {
 		t.Fatalf("13 records in batches of 8: %v", err)
 	}
 }
+
+// Multiple imputations from the exact posterior are draws from the
+// Gaussian conditional p(x_m | x_o): mean mu_m + S_mo S_oo^-1 (x_o - mu_o)
+// and covariance S_mm - S_mo S_oo^-1 S_om (Bishop 2006, PRML section
+// 2.3.1), computed here with gonum mat. One record repeated 3000 times
+// (each copy has its own noise), two draws each.
+func TestColumnsPPCAImputeDraws(t *testing.T) {
+	p := newMissingPPCA(1)
+	m := p.model(t, 0, 1)
+	const copies = 3000
+	x := make([]float64, 0, copies*p.f)
+	for i := 0; i < copies; i++ {
+		x = append(x, p.x[:p.f]...)
+	}
+	data, err := dataset.NewMissing(x, copies, p.f)
+	if err != nil {
+		t.Fatal(err)
+	}
+	draws, err := m.ImputeDraws(context.Background(), data, 2, 11)
+	if err != nil {
+		t.Fatal(err)
+	}
+	s := func(i, j int) float64 {
+		v := p.w[i] * p.w[j]
+		if i == j {
+			v += p.s2
+		}
+		return v
+	}
+	k := len(p.obs)
+	soo := mat.NewDense(k, k, nil)
+	smo := mat.NewDense(len(p.mis), k, nil)
+	d := mat.NewVecDense(k, nil)
+	for a, i := range p.obs {
+		d.SetVec(a, p.x[i]-p.b[i])
+		for c, j := range p.obs {
+			soo.Set(a, c, s(i, j))
+		}
+		for c, j := range p.mis {
+			smo.Set(c, a, s(j, i))
+		}
+	}
+	var sol mat.VecDense
+	if err := sol.SolveVec(soo, d); err != nil {
+		t.Fatal(err)
+	}
+	var cm mat.VecDense
+	cm.MulVec(smo, &sol)
+	var tmp, reduce mat.Dense
+	if err := tmp.Solve(soo, smo.T()); err != nil {
+		t.Fatal(err)
+	}
+	reduce.Mul(smo, &tmp)
+	for c, j := range p.mis {
+		wantMean := p.b[j] + cm.AtVec(c)
+		wantVar := s(j, j) - reduce.At(c, c)
+		sum, sq, n := 0.0, 0.0, 0.0
+		for _, dr := range draws {
+			for i := 0; i < copies; i++ {
+				v := dr.At(i, j)
+				sum += v
+				sq += v * v
+				n++
+			}
+		}
+		mean := sum / n
+		variance := sq/n - mean*mean
+		// 6000 draws: standard error sqrt(var/n) of the mean and about
+		// var*sqrt(2/n) of the variance; 5 of them as tolerance.
+		if se := math.Sqrt(wantVar / n); math.Abs(mean-wantMean) > 5*se {
+			t.Errorf("missing %d: draw mean %v, want %v (se %v)", j, mean, wantMean, se)
+		}
+		if se := wantVar * math.Sqrt(2/n); math.Abs(variance-wantVar) > 5*se {
+			t.Errorf("missing %d: draw variance %v, want %v (se %v)", j, variance, wantVar, se)
+		}
+	}
+}
