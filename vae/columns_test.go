@@ -171,6 +171,19 @@ func TestColumnsPPCAMissingExact(t *testing.T) {
 			t.Errorf("record %d: score %.12g, want -log p(x_o) = %.12g", r, s, want)
 		}
 	}
+	// Evaluate's importance-weighted NLL is the mean of the same values
+	// (the mean over records of -log p(x_o), observed entries only).
+	rep, err := m.Evaluate(context.Background(), data, vae.EvalOptions{K: 4, Seed: 1})
+	if err != nil {
+		t.Fatal(err)
+	}
+	meanNLL := 0.0
+	for r := 0; r < p.n; r++ {
+		meanNLL -= p.exactLogPx(t, r) / float64(p.n)
+	}
+	if math.Abs(rep.NLL-meanNLL) > 1e-9*math.Abs(meanNLL) {
+		t.Errorf("Evaluate NLL %.12g, want the mean -log p(x_o) %.12g", rep.NLL, meanNLL)
+	}
 	// Imputation against the Gaussian conditional mean
 	// mu_m + S_mo S_oo^-1 (x_o - mu_o), S = w w^T + s2 I (Bishop 2006,
 	// PRML section 2.3.1), computed with gonum mat.
