@@ -256,7 +256,7 @@ func TestFlags(t *testing.T) {
 	}
 	help := out.String()
 	for _, want := range []string{"-out", "-seed", "-epochs", "-stations", "-days", "-val-days", "-cal-days", "-test-days", "-interval", "-k",
-		"-alpha", "-fdr", "-screen", "-drift-days", "-latent", "-hidden", "-batch", "-lr", "-sigma", "invented",
+		"-alpha", "-fdr", "-screen", "-drift-days", "-latent", "-hidden", "-batch", "-lr", "-sigma", "-missing", "-train", "-score", "-schema", "invented",
 		"screening aid, not a protection system", "local codes"} {
 		if !strings.Contains(help, want) {
 			t.Errorf("-h output lacks %q", want)
@@ -270,7 +270,8 @@ func TestFlags(t *testing.T) {
 		t.Errorf("parsed %+v", cfg)
 	}
 	for _, bad := range [][]string{{"-alpha", "1"}, {"-fdr", "0"}, {"-epochs", "0"}, {"-hidden", "8,x"}, {"-val-days", "28"},
-		{"-cal-days", "0"}, {"-screen", "1m"}, {"-drift-days", "0"}, {"extra"}} {
+		{"-cal-days", "0"}, {"-screen", "1m"}, {"-drift-days", "0"}, {"extra"}, {"-missing", "0.95"}, {"-train", "a.csv"},
+		{"-schema", "s.json"}} {
 		if _, err := parseFlags(bad, &out); err == nil {
 			t.Errorf("%v: want an error", bad)
 		}
@@ -355,5 +356,29 @@ func TestRunFiles(t *testing.T) {
 	cfg.ScoreFile = write("bad.csv", "temp,press,starts,state\n1,2,0,on\n1,2,0,stalled\n")
 	if _, err := runFiles(context.Background(), cfg); err == nil || !strings.Contains(err.Error(), `line 3, column 4 ("state")`) {
 		t.Errorf("unknown category: err = %v", err)
+	}
+}
+
+// TestRunMissing runs the tiny fleet with dropouts: the report has the
+// imputation comparison at three rates and top inputs for every event.
+func TestRunMissing(t *testing.T) {
+	cfg := tinyConfig(t)
+	cfg.Missing = 0.2
+	res, err := run(context.Background(), cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(res.Imputation) != 3 {
+		t.Fatalf("imputation rows %+v", res.Imputation)
+	}
+	for _, r := range res.Imputation {
+		if r.Hidden == 0 || math.IsNaN(r.RMSEModel) || math.IsNaN(r.RMSEMean) || r.ModeAccModel < 0 || r.ModeAccModel > 1 {
+			t.Errorf("imputation row %+v", r)
+		}
+	}
+	for _, ev := range res.Events {
+		if len(ev.Top) != 3 || ev.Top[0].Excess < ev.Top[1].Excess {
+			t.Errorf("event %v: top inputs %+v", ev.Fault, ev.Top)
+		}
 	}
 }
