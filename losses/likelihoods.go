@@ -194,18 +194,22 @@ const (
 	KindBernoulli       = "bernoulli"
 	KindGaussian        = "gaussian"
 	KindLearnedGaussian = "learned_gaussian"
+	KindColumns         = "columns"
 )
 
 // LikelihoodSpec describes a likelihood of this package so that a
 // checkpoint can rebuild it: Kind is one of the Kind constants; Sigma is
 // the fixed standard deviation of a Gaussian; Features and Name are the
 // arguments of NewLearnedGaussian (its parameter values are stored with the
-// other parameters, under Name + ".log_sigma").
+// other parameters, under Name + ".log_sigma"). For KindColumns, Columns
+// lists the columns, Features is their number and Name the prefix given to
+// NewColumns (its log sigma parameter, if any, is stored the same way).
 type LikelihoodSpec struct {
-	Kind     string  `json:"kind"`
-	Sigma    float64 `json:"sigma,omitempty"`
-	Features int     `json:"features,omitempty"`
-	Name     string  `json:"name,omitempty"`
+	Kind     string   `json:"kind"`
+	Sigma    float64  `json:"sigma,omitempty"`
+	Features int      `json:"features,omitempty"`
+	Name     string   `json:"name,omitempty"`
+	Columns  []Column `json:"columns,omitempty"`
 }
 
 // DescribeLikelihood returns the spec of a likelihood of this package, or
@@ -226,6 +230,11 @@ func DescribeLikelihood(l Likelihood) (LikelihoodSpec, bool) {
 			return LikelihoodSpec{}, false
 		}
 		return LikelihoodSpec{Kind: KindLearnedGaussian, Features: v.features, Name: v.name}, true
+	case *Columns:
+		if v == nil || v.cols == nil {
+			return LikelihoodSpec{}, false
+		}
+		return LikelihoodSpec{Kind: KindColumns, Features: len(v.cols), Name: v.name, Columns: v.Schema()}, true
 	}
 	return LikelihoodSpec{}, false
 }
@@ -249,6 +258,15 @@ func LikelihoodFromSpec(spec LikelihoodSpec, dtype tensor.Dtype) (Likelihood, er
 		return Gaussian{Sigma: spec.Sigma}, nil
 	case KindLearnedGaussian:
 		l, err := NewLearnedGaussian(spec.Name, spec.Features, dtype)
+		if err != nil {
+			return nil, fmt.Errorf("%s: %w", where, err)
+		}
+		return l, nil
+	case KindColumns:
+		if spec.Features != len(spec.Columns) {
+			return nil, argError(where, "spec.Features", "%d, and %d columns are listed", spec.Features, len(spec.Columns))
+		}
+		l, err := NewColumns(spec.Name, spec.Columns, dtype)
 		if err != nil {
 			return nil, fmt.Errorf("%s: %w", where, err)
 		}

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"math"
 	"math/rand/v2"
+	"reflect"
 	"testing"
 
 	"gonum.org/v1/gonum/stat/distuv"
@@ -212,7 +213,7 @@ func TestLikelihoodSpecRoundTrip(t *testing.T) {
 	}
 	for _, c := range cases {
 		spec, ok := losses.DescribeLikelihood(c.l)
-		if !ok || spec != c.want {
+		if !ok || !reflect.DeepEqual(spec, c.want) {
 			t.Errorf("DescribeLikelihood(%T) = %+v, %v; want %+v", c.l, spec, ok, c.want)
 			continue
 		}
@@ -230,7 +231,7 @@ func TestLikelihoodSpecRoundTrip(t *testing.T) {
 			t.Fatalf("LikelihoodFromSpec(%+v): %v", back, err)
 		}
 		again, ok := losses.DescribeLikelihood(l)
-		if !ok || again != c.want {
+		if !ok || !reflect.DeepEqual(again, c.want) {
 			t.Errorf("rebuilt %T describes as %+v, want %+v", l, again, c.want)
 		}
 		if lg2, ok := l.(*losses.LearnedGaussian); ok {

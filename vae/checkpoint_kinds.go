@@ -84,7 +84,7 @@ func (k *Kinds) AddLayer(kind string, lk LayerKind) error {
 
 func builtinLikelihood(kind string) bool {
 	switch kind {
-	case losses.KindBernoulli, losses.KindGaussian, losses.KindLearnedGaussian:
+	case losses.KindBernoulli, losses.KindGaussian, losses.KindLearnedGaussian, losses.KindColumns:
 		return true
 	}
 	return false

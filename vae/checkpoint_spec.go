@@ -12,6 +12,8 @@ import (
 	"slices"
 	"strings"
 
+	"gorgonia.org/tensor"
+
 	"lowerbound.dev/internal/safetensors"
 	"lowerbound.dev/layers"
 	"lowerbound.dev/losses"
@@ -93,6 +95,11 @@ func (s *modelSpec) transforms() ([]transformSpec, error) {
 	case losses.KindLearnedGaussian:
 		ts = append(ts, transformSpec{Target: s.Likelihood.Name + ".log_sigma", Op: opSoftplusFloor, Lo: ptr(losses.MinLogSigma),
 			Result: "log standard deviation of p(x|z)"})
+	case losses.KindColumns:
+		if columnsLearnSigma(s.Likelihood.Columns) {
+			ts = append(ts, transformSpec{Target: s.Likelihood.Name + ".log_sigma", Op: opSoftplusFloor, Lo: ptr(losses.MinLogSigma),
+				Result: "log standard deviation of the real and positive columns of p(x|z)"})
+		}
 	}
 	switch s.Prior.Kind {
 	case priors.KindDiagonal:
@@ -258,6 +265,24 @@ func checkSpec(s *modelSpec, format string, tensors map[string]safetensors.Tenso
 	if s.Likelihood.Kind == losses.KindLearnedGaussian && s.Likelihood.Features != f {
 		return fmt.Errorf("likelihood features %d differ from the %d values per record of input_shape %v", s.Likelihood.Features, f, s.InputShape)
 	}
+	if s.Likelihood.Kind == losses.KindColumns {
+		if len(s.InputShape) != 1 || s.Likelihood.Features != f || len(s.Likelihood.Columns) != f {
+			return fmt.Errorf("likelihood columns: features %d and %d columns listed, want both equal to the %d values per record of a flat input_shape %v",
+				s.Likelihood.Features, len(s.Likelihood.Columns), f, s.InputShape)
+		}
+		outs := 0
+		for _, c := range s.Likelihood.Columns {
+			if c.Categories < 0 || c.Categories > lim.maxFeatures-outs {
+				return fmt.Errorf("likelihood columns: more than %d decoder outputs per record (see vae.MaxFeatures)", lim.maxFeatures)
+			}
+			outs += max(c.Categories, 1)
+		}
+		if _, err := losses.NewColumns(s.Likelihood.Name, s.Likelihood.Columns, tensor.Float64); err != nil {
+			return fmt.Errorf("likelihood columns: %v", err)
+		}
+	} else if s.Likelihood.Columns != nil {
+		return fmt.Errorf("likelihood kind %q lists columns; only %q does", s.Likelihood.Kind, losses.KindColumns)
+	}
 	switch format {
 	case formatV1:
 		if s.Transforms != nil {
@@ -391,6 +416,11 @@ func likelihoodShapes(s likelihoodSpec, kinds userKinds) ([]layers.ParamShape, e
 		return nil, nil
 	case losses.KindLearnedGaussian:
 		return []layers.ParamShape{{Name: s.Name + ".log_sigma", Shape: []int{1, s.Features}}}, nil
+	case losses.KindColumns:
+		if columnsLearnSigma(s.Columns) {
+			return []layers.ParamShape{{Name: s.Name + ".log_sigma", Shape: []int{1, len(s.Columns)}}}, nil
+		}
+		return nil, nil
 	}
 	return nil, fmt.Errorf("likelihood kind %q: %w", s.Kind, losses.ErrUnknownLikelihood)
 }
@@ -440,3 +470,14 @@ func sortedNames(m map[string]safetensors.Tensor) []string {
 // errSpecMismatch reports a description that decodes and builds but does
 // not say what the rebuilt model says.
 var errSpecMismatch = errors.New("the description differs from the model it builds")
+
+// columnsLearnSigma reports whether a column learns its sigma: then the
+// columns likelihood has its log sigma parameter.
+func columnsLearnSigma(cols []losses.Column) bool {
+	for _, c := range cols {
+		if c.LearnSigma {
+			return true
+		}
+	}
+	return false
+}

@@ -61,6 +61,25 @@
 // and check the context between chunks. A float32 model refuses values
 // beyond the float32 range with an error naming the record and feature.
 //
+// # Mixed records and missing values
+//
+// A model whose likelihood is a losses.Columns (build its columns from a
+// dataset.Schema with ColumnsFromSchema; NewMLP sizes both ends from it)
+// reads records of real, positive, count, binary and categorical columns
+// with missing entries (NaN, see dataset.NewMissing), as in Nazabal,
+// Olmos, Ghahramani and Valera 2020: the encoder sees the zero-filled
+// record in the model-input layout with its observation mask, and the
+// likelihood sums over observed entries only, so Train, Evaluate, Score
+// and the importance-weighted estimate are over the observed entries of
+// each record (not rescaled by their number). Impute fills missing entries
+// with the conditional mean (mode for categories) decoded at the posterior
+// mean; ImputeDraws draws seeded multiple imputations from the posterior;
+// ScoreColumns returns, beside the scores, each column's contribution to
+// the reconstruction term (which input drives an alarm). SetSchema and
+// SetStandardizer store the schema and the standardisation in the
+// checkpoint metadata, and Schema and Standardizer read them back after
+// Load.
+//
 // # Checkpoints
 //
 // Save writes a safetensors file atomically (SaveTo, to any io.Writer);

@@ -285,6 +285,7 @@ type sampledChunk struct {
 	iw     []float64 // log (1/K) sum_s w_s; nil for K = 1
 	mu     []float64 // (count, D) posterior means
 	klDim  []float64 // (count, D) closed-form KL per dimension, or nil
+	cols   []float64 // (count, C) mean over the samples of log p(x_j|z_s), columns models only
 }
 
 // kChunks splits K samples into the fewest chunks of at most limit
@@ -367,6 +368,19 @@ func (m *Model) forSampled(ctx context.Context, r sampledRun, lim inferLimits, f
 						}
 					}
 				}
+				if o.cols != nil {
+					nc := m.width
+					if c.cols == nil {
+						c.cols = make([]float64, count*nc)
+					}
+					for s := 0; s < kc; s++ {
+						for i := 0; i < count; i++ {
+							for j := 0; j < nc; j++ {
+								c.cols[i*nc+j] += o.cols[(s*b+i)*nc+j] / float64(k)
+							}
+						}
+					}
+				}
 				if ci == 0 {
 					c.mu = o.mu[:count*d]
 					if o.klDim != nil {
@@ -395,6 +409,7 @@ func (m *Model) forSampled(ctx context.Context, r sampledRun, lim inferLimits, f
 // its batch (padding rows included).
 type chunkOutputs struct {
 	logLik, kl, iw, mu, klDim []float64
+	cols                      []float64 // (K*B, C), columns models only
 }
 
 // runChunk runs the evaluation program of the given key on records idx of
@@ -425,6 +440,9 @@ func (m *Model) runChunk(key programKey, r sampledRun, lim inferLimits, idx []in
 	}
 	if p.klDim != nil {
 		o.klDim = p.values(p.klDim)
+	}
+	if p.colLP != nil {
+		o.cols = p.values(p.colLP)
 	}
 	use(o)
 	return nil

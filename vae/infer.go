@@ -108,6 +108,19 @@ func (m *Model) checkValues(where string, data *dataset.Set) error {
 			} else {
 				v = row64[j]
 			}
+			if m.cols != nil {
+				// NaN marks a missing entry, which a columns model skips.
+				orig := data.Row(i)[j]
+				msg := m.cols.CheckValue(j, v)
+				if msg == "" && !math.IsNaN(orig) {
+					msg = m.unrepresentable(orig)
+				}
+				if msg != "" {
+					name := m.cols.Schema()[j].Name
+					return fmt.Errorf("vae.%s: data: record %d, column %d (%q): value %v %s: %w", where, i, j, name, orig, msg, dataset.ErrInvalidData)
+				}
+				continue
+			}
 			if math.IsNaN(v) || math.IsInf(v, 0) {
 				orig := data.Row(i)[j]
 				return fmt.Errorf("vae.%s: data: record %d, feature %d: value %v %s: %w", where, i, j, orig, m.unrepresentable(orig), dataset.ErrInvalidData)
@@ -158,6 +171,13 @@ func (m *Model) fillInputs(p *program, data *dataset.Set, idx []int) error {
 		if err := fillPrefix(p.x, data, idx, m.width); err != nil {
 			return err
 		}
+		if p.xEnc != nil {
+			// Padding rows of a columns model are all missing, so
+			// they add exactly 0 (a zero could be outside a column's
+			// support, and -Inf times a zero weight is NaN).
+			fillRange(p.x, len(idx)*m.width, b*m.width, math.NaN())
+			m.encodeInputs(p, len(idx))
+		}
 		if p.xRep != nil {
 			repeatBlock(p.xRep, p.x, k)
 		}
@@ -170,6 +190,30 @@ func (m *Model) fillInputs(p *program, data *dataset.Set, idx []int) error {
 		m.fillLabels(p, labels)
 	}
 	return nil
+}
+
+// encodeInputs writes the model-input layout of the first rows records of
+// p.x into p.xEnc (padding rows zero).
+func (m *Model) encodeInputs(p *program, rows int) {
+	f, w := m.width, m.cols.EncoderWidth()
+	x := make([]float64, f)
+	enc := make([]float64, w)
+	p.xEnc.Zero()
+	f32, _ := p.x.Data().([]float32)
+	f64, _ := p.x.Data().([]float64)
+	for i := 0; i < rows; i++ {
+		for j := range x {
+			if f32 != nil {
+				x[j] = float64(f32[i*f+j])
+			} else {
+				x[j] = f64[i*f+j]
+			}
+		}
+		m.cols.EncodeRow(x, enc)
+		for j, v := range enc {
+			setAt(p.xEnc, i*w+j, v)
+		}
+	}
 }
 
 // fillLabels writes one-hot labels (and label planes) for a full batch.

@@ -51,7 +51,16 @@ func NewMLP(cfg MLPConfig) (*Model, error) {
 		return nil, configError("Classes", "%d is negative", cfg.Classes)
 	}
 	opt := layers.Options{Dtype: cfg.Dtype, Seed: cfg.Seed}
-	encSizes := append([]int{cfg.Input + cfg.Classes}, cfg.Hidden...)
+	// A columns likelihood sets both ends: the encoder takes the
+	// model-input layout (one-hot categories and the mask), the decoder
+	// gives one output per column and one per category.
+	encIn, decOut := cfg.Input, cfg.Input
+	if c, ok := cfg.Likelihood.(*losses.Columns); ok {
+		encIn, decOut = c.EncoderWidth(), c.OutputWidth()
+	} else if ow, ok := cfg.Likelihood.(interface{ OutputWidth() int }); ok {
+		decOut = ow.OutputWidth()
+	}
+	encSizes := append([]int{encIn + cfg.Classes}, cfg.Hidden...)
 	enc, err := layers.NewMLP("encoder", layers.MLPConfig{Sizes: encSizes, Activation: cfg.Activation, Output: orReLU(cfg.Activation)}, opt)
 	if err != nil {
 		return nil, configWrap("Hidden", err)
@@ -63,7 +72,7 @@ func NewMLP(cfg MLPConfig) (*Model, error) {
 	decSizes := []int{cfg.Latent + cfg.Classes}
 	hidden := slices.Clone(cfg.Hidden)
 	slices.Reverse(hidden)
-	decSizes = append(append(decSizes, hidden...), cfg.Input)
+	decSizes = append(append(decSizes, hidden...), decOut)
 	dec, err := layers.NewMLP("decoder", layers.MLPConfig{Sizes: decSizes, Activation: cfg.Activation}, opt)
 	if err != nil {
 		return nil, configWrap("Hidden", err)

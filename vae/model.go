@@ -92,9 +92,15 @@ type Config struct {
 // Reconstruct, Score, Evaluate, ...) are safe for concurrent use; Train must
 // not run at the same time as any other method.
 type Model struct {
-	cfg    Config
-	dtype  tensor.Dtype
-	width  int // F, values per record
+	cfg   Config
+	dtype tensor.Dtype
+	width int // F, values per record
+	// outWidth is the decoder's outputs per record: F, or the
+	// likelihood's OutputWidth (a columns likelihood with categories).
+	outWidth int
+	// cols is the likelihood when it is a losses.Columns: the encoder
+	// then sees the model-input layout and missing entries are skipped.
+	cols   *losses.Columns
 	latent int
 	params []*layers.Param
 	// owned holds every listed parameter: a graph may bind no other (see
@@ -105,7 +111,7 @@ type Model struct {
 	mu    sync.Mutex
 	pools map[programKey][]*program
 	// builds counts the programs compiled, per kind (read by tests).
-	builds [kindReconstruct + 1]atomic.Int64
+	builds [kindDecodeRaw + 1]atomic.Int64
 	// engine is held for writing while acquire compiles a program and
 	// for reading while a program runs: gorgonia's NewTapeMachine writes
 	// the engine field of every tensor bound to the graph, the shared
@@ -164,7 +170,20 @@ func New(cfg Config) (*Model, error) {
 	if cfg.Prior.Dim() != latent {
 		return nil, configError("Prior", "dimension %d differs from the head's latent size %d", cfg.Prior.Dim(), latent)
 	}
-	m := &Model{cfg: cfg, dtype: cfg.Dtype, width: width, latent: latent, pools: map[programKey][]*program{}}
+	outWidth := width
+	if ow, ok := cfg.Likelihood.(interface{ OutputWidth() int }); ok {
+		outWidth = ow.OutputWidth()
+		if outWidth < 1 {
+			return nil, configError("Likelihood", "output width %d, want >= 1", outWidth)
+		}
+	}
+	cols, _ := cfg.Likelihood.(*losses.Columns)
+	if cols != nil {
+		if n := len(cols.Schema()); n != width || len(cfg.InputShape) != 1 {
+			return nil, configError("Likelihood", "%d columns, and InputShape %v: want flat records of one value per column", n, cfg.InputShape)
+		}
+	}
+	m := &Model{cfg: cfg, dtype: cfg.Dtype, width: width, outWidth: outWidth, cols: cols, latent: latent, pools: map[programKey][]*program{}}
 	seen := map[string]string{}
 	m.owned = map[*layers.Param]bool{}
 	add := func(part string, ps []*layers.Param) error {

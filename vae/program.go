@@ -24,6 +24,7 @@ const (
 	kindEncode                         // posterior mean and log-variance only
 	kindDecode                         // z in, likelihood mean out
 	kindReconstruct                    // x in, decode(posterior mean) out
+	kindDecodeRaw                      // z in, decoder output out (no likelihood mean)
 )
 
 type programKey struct {
@@ -44,6 +45,9 @@ type program struct {
 	// inputs
 	x, xRep, y, yRep, planes, eps, z *tensor.Dense
 	mask                             *tensor.Dense
+	// xEnc is the encoder input of a columns model: the model-input
+	// layout of x (losses.Columns.EncodeRow), filled by fillInputs.
+	xEnc *tensor.Dense
 	// scalar inputs, set with G.Let before each run; lambda is the free
 	// bits floor per group (per dimension, or Lambda*D on the total)
 	invCount, beta, capTarget, capGamma, lambda *G.Node
@@ -54,6 +58,7 @@ type program struct {
 	loss, recon, klAvg    *G.Node // training: batch averages
 	klDimAvg              *G.Node // training: (1, D) masked batch average per dimension
 	klTerm                *G.Node // training: the KL term beta weighs (after free bits)
+	colLP                 *G.Node // evaluation of a columns model: (K*B, C) log p(x_j|z)
 	paramNodes            []*G.Node
 
 	// reads holds copies of the output nodes' values, taken by gorgonia
@@ -158,24 +163,30 @@ func (m *Model) build(key programKey) (*program, error) {
 		if err := owns("Decoder"); err != nil {
 			return nil, err
 		}
-		os := out.Shape()
-		if os[0] != rows || os.TotalSize() != rows*f {
-			return nil, wrap("decoder", fmt.Errorf("output shape %v, want %d rows of %d values", os, rows, f))
+		os, ow := out.Shape(), m.outWidth
+		if os[0] != rows || os.TotalSize() != rows*ow {
+			return nil, wrap("decoder", fmt.Errorf("output shape %v, want %d rows of %d values", os, rows, ow))
 		}
 		if os.Dims() != 2 {
-			if out, err = G.Reshape(out, tensor.Shape{rows, f}); err != nil {
+			if out, err = G.Reshape(out, tensor.Shape{rows, ow}); err != nil {
 				return nil, wrap("decoder output", err)
 			}
 		}
 		return out, nil
 	}
 
-	if key.kind == kindDecode {
+	if key.kind == kindDecode || key.kind == kindDecodeRaw {
 		var zN *G.Node
 		zN, p.z = m.newInput(g, "z", b, d)
 		out, err := decodeFrom(zN, yN, b)
 		if err != nil {
 			return nil, err
+		}
+		if key.kind == kindDecodeRaw {
+			if p.mean, err = G.Add(out, m.scalar(0)); err != nil {
+				return nil, wrap("decoder output", err)
+			}
+			return p, m.compile(p, nil)
 		}
 		if p.mean, err = m.cfg.Likelihood.Mean(p.scope, out); err != nil {
 			return nil, wrap("likelihood mean", err)
@@ -190,6 +201,9 @@ func (m *Model) build(key programKey) (*program, error) {
 	var xN *G.Node
 	xN, p.x = m.newInput(g, "x", b, f)
 	encIn := xN
+	if m.cols != nil {
+		encIn, p.xEnc = m.newInput(g, "x_enc", b, m.cols.EncoderWidth())
+	}
 	if len(m.cfg.InputShape) == 3 {
 		shape := append(tensor.Shape{b}, m.cfg.InputShape...)
 		// Reshape an input through a copy: gorgonia's Reshape of an input
@@ -264,8 +278,19 @@ func (m *Model) build(key programKey) (*program, error) {
 	if k > 1 {
 		xRepN, p.xRep = m.newInput(g, "x_rep", k*b, f)
 	}
-	logLik, err := m.cfg.Likelihood.LogProb(p.scope, xRepN, out) // (K*B)
-	if err != nil {
+	var logLik *G.Node // (K*B)
+	if m.cols != nil {
+		colLP, err := m.cols.ColumnLogProb(p.scope, xRepN, out)
+		if err != nil {
+			return nil, wrap("likelihood", err)
+		}
+		if key.kind == kindEvaluate {
+			p.colLP = colLP
+		}
+		if logLik, err = losses.PerSample(colLP); err != nil {
+			return nil, wrap("likelihood", err)
+		}
+	} else if logLik, err = m.cfg.Likelihood.LogProb(p.scope, xRepN, out); err != nil {
 		return nil, wrap("likelihood", err)
 	}
 	if err := owns("Likelihood"); err != nil {
@@ -437,7 +462,7 @@ func meanOverSamples(v *G.Node, k, b int) (*G.Node, error) {
 
 func (m *Model) compile(p *program, dual []*G.Node) error {
 	p.reads = map[*G.Node]*G.Value{}
-	for _, n := range []*G.Node{p.mu, p.logVar, p.mean, p.logLik, p.kl, p.klDim, p.iw, p.loss, p.recon, p.klAvg, p.klDimAvg, p.klTerm} {
+	for _, n := range []*G.Node{p.mu, p.logVar, p.mean, p.logLik, p.kl, p.klDim, p.iw, p.loss, p.recon, p.klAvg, p.klDimAvg, p.klTerm, p.colLP} {
 		if n == nil || p.reads[n] != nil {
 			continue
 		}

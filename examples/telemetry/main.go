@@ -28,6 +28,15 @@ func main() {
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt)
 	defer stop()
 	fmt.Println(Disclaimer)
+	if cfg.TrainFile != "" {
+		res, err := runFiles(ctx, cfg)
+		if err != nil {
+			fmt.Fprintln(os.Stderr, "telemetry:", err)
+			os.Exit(1)
+		}
+		printFilesReport(os.Stdout, cfg, res)
+		return
+	}
 	res, err := run(ctx, cfg)
 	if err != nil {
 		fmt.Fprintln(os.Stderr, "telemetry:", err)
@@ -50,9 +59,14 @@ held-out normal days, then scores a test period with injected faults
 (bearing wear, cavitation, a stuck sensor). Reports per fault type the
 precision and recall at the threshold and under batch screening at a target
 false discovery rate (Benjamini-Hochberg, -fdr), the false-alarm rate seen
-on normal test records with its interval, and a drift check per window of
--drift-days. Writes scores.png, roc.png, model.safetensors (with the alarm
-calibration) and scores.csv to -out.
+on normal test records with its interval, a drift check per window of
+-drift-days, the inputs that drive each fault's alarms and an imputation
+comparison. Records are mixed (sensors, an operating mode, a start count);
+-missing drops readings out. Writes scores.png, roc.png, model.safetensors
+(with the alarm calibration) and scores.csv to -out.
+
+With -train FILE -score FILE [-schema FILE] the same screening runs on
+your own CSV files instead of the invented fleet.
 
 The scores are a screening aid, not a protection system: alarms, trips and
 inspections follow the site's own procedures, local codes and qualified
@@ -82,6 +96,11 @@ Flags:
 	fs.IntVar(&cfg.BatchSize, "batch", cfg.BatchSize, "records per optimiser step")
 	fs.Float64Var(&cfg.LearnRate, "lr", cfg.LearnRate, "Adam learning rate")
 	fs.Float64Var(&cfg.Sigma, "sigma", cfg.Sigma, "fixed Gaussian sigma in standardised units; 0 learns one sigma per sensor")
+	fs.Float64Var(&cfg.Missing, "missing", cfg.Missing, "fraction of sensor readings lost to transmitter dropouts in the invented fleet, in [0, 0.9]")
+	fs.BoolVar(&cfg.NoImpute, "no-impute", cfg.NoImpute, "skip the imputation comparison (readings hidden at random at 10%, 30%, 50%)")
+	fs.StringVar(&cfg.TrainFile, "train", "", "CSV `file` of a normal period to train on instead of the invented fleet (needs -score)")
+	fs.StringVar(&cfg.ScoreFile, "score", "", "CSV `file` to score with the model trained on -train")
+	fs.StringVar(&cfg.SchemaFile, "schema", "", "JSON `file` of the columns of -train and -score: {\"columns\": [{\"name\", \"kind\": real|positive|count|binary|categorical, \"categories\"}]}; without it every column is real")
 	if err := fs.Parse(args); err != nil {
 		return cfg, err
 	}
@@ -162,7 +181,7 @@ func printReport(w io.Writer, cfg Config, res Result) {
 	fmt.Fprintln(w, "KS D is the largest gap between the score distributions (0 = same); KS all includes the faulty records.")
 	fmt.Fprintln(w, "Consecutive records are correlated, so the KS p-value and the interval, which assume independent records, overstate their precision.")
 
-	fmt.Fprintf(w, "\n%-8s %-9s %-26s %8s %8s %9s %s\n", "station", "type", "fault", "records", "alarms", "screened", "first alarm after onset")
+	fmt.Fprintf(w, "\n%-8s %-9s %-26s %8s %8s %9s %-23s %s\n", "station", "type", "fault", "records", "alarms", "screened", "first alarm after onset", "top inputs")
 	for _, ev := range res.Events {
 		what := ev.Fault.String()
 		if ev.Sensor >= 0 {
@@ -172,7 +191,17 @@ func printReport(w io.Writer, cfg Config, res Result) {
 		if ev.FirstFlag >= 0 {
 			first = ev.FirstFlag.String()
 		}
-		fmt.Fprintf(w, "%-8d %-9s %-26s %8d %8d %9d %s\n", ev.Station, fleet.StationTypes()[ev.StationType].Name, what, ev.Records, ev.Flagged, ev.Screened, first)
+		fmt.Fprintf(w, "%-8d %-9s %-26s %8d %8d %9d %-23s %s\n", ev.Station, fleet.StationTypes()[ev.StationType].Name, what, ev.Records, ev.Flagged, ev.Screened, first, topString(ev.Top))
+	}
+	fmt.Fprintln(w, "top inputs: mean contribution to -log p(x|z) over the event's alarmed records, less the mean over normal test records, in nats")
+	if len(res.Imputation) > 0 {
+		fmt.Fprintf(w, "\nimputation of readings hidden completely at random (clean test records; model: conditional mean at the posterior mean, mode for categories)\n")
+		fmt.Fprintf(w, "%7s %8s | %-23s | %-23s | %-21s\n", "", "", "sensors RMSE (std units)", "mode accuracy", "starts MAE")
+		fmt.Fprintf(w, "%7s %8s | %11s %11s | %11s %11s | %10s %10s\n", "missing", "hidden", "model", "col. mean", "model", "majority", "model", "col. mean")
+		for _, r := range res.Imputation {
+			fmt.Fprintf(w, "%6.0f%% %8d | %11.3f %11.3f | %11.3f %11.3f | %10.3f %10.3f\n", 100*r.Rate, r.Hidden, r.RMSEModel, r.RMSEMean,
+				r.ModeAccModel, r.ModeAccMajor, r.StartsMAEModel, r.StartsMAE)
+		}
 	}
 	fmt.Fprintf(w, "\ncheckpoint round trip: largest score difference %g; alarm calibration stored under %q\n", res.ReloadMaxDiff, alarm.MetadataKey)
 	fmt.Fprintf(w, "wrote %s, %s, %s, %s in %.1fs\n", res.ScoresPNG, res.ROCPNG, res.Checkpoint, res.ScoresCSV, res.Duration.Seconds())
@@ -201,4 +230,13 @@ func num(v float64) string {
 		return "-"
 	}
 	return fmt.Sprintf("%.3f", v)
+}
+
+// topString formats the top contributing inputs.
+func topString(top []Contribution) string {
+	var parts []string
+	for _, c := range top {
+		parts = append(parts, fmt.Sprintf("%s %+.1f", c.Name, c.Excess))
+	}
+	return strings.Join(parts, ", ")
 }

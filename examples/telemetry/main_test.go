@@ -6,6 +6,7 @@ import (
 	"encoding/csv"
 	"errors"
 	"flag"
+	"fmt"
 	"image/png"
 	"math"
 	"os"
@@ -125,11 +126,11 @@ func TestRunSmoke(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	raw, err := fleet.ToSet(fl.Test)
+	raw, err := fleet.ToMixedSet(fl.Test)
 	if err != nil {
 		t.Fatal(err)
 	}
-	scores, err := sc.score(context.Background(), raw, cfg.K, cfg.Seed)
+	scores, _, err := sc.score(context.Background(), raw, cfg.K, cfg.Seed)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -255,7 +256,7 @@ func TestFlags(t *testing.T) {
 	}
 	help := out.String()
 	for _, want := range []string{"-out", "-seed", "-epochs", "-stations", "-days", "-val-days", "-cal-days", "-test-days", "-interval", "-k",
-		"-alpha", "-fdr", "-screen", "-drift-days", "-latent", "-hidden", "-batch", "-lr", "-sigma", "invented",
+		"-alpha", "-fdr", "-screen", "-drift-days", "-latent", "-hidden", "-batch", "-lr", "-sigma", "-missing", "-train", "-score", "-schema", "invented",
 		"screening aid, not a protection system", "local codes"} {
 		if !strings.Contains(help, want) {
 			t.Errorf("-h output lacks %q", want)
@@ -269,7 +270,8 @@ func TestFlags(t *testing.T) {
 		t.Errorf("parsed %+v", cfg)
 	}
 	for _, bad := range [][]string{{"-alpha", "1"}, {"-fdr", "0"}, {"-epochs", "0"}, {"-hidden", "8,x"}, {"-val-days", "28"},
-		{"-cal-days", "0"}, {"-screen", "1m"}, {"-drift-days", "0"}, {"extra"}} {
+		{"-cal-days", "0"}, {"-screen", "1m"}, {"-drift-days", "0"}, {"extra"}, {"-missing", "0.95"}, {"-train", "a.csv"},
+		{"-schema", "s.json"}} {
 		if _, err := parseFlags(bad, &out); err == nil {
 			t.Errorf("%v: want an error", bad)
 		}
@@ -279,5 +281,104 @@ func TestFlags(t *testing.T) {
 	out.Reset()
 	if _, err := parseFlags([]string{"-alpha", "0.0001"}, &out); err == nil || !strings.Contains(out.String(), "needs at least 9999") {
 		t.Errorf("-alpha 0.0001: err %v, output %q; want it to say 9999 records are needed", err, out.String())
+	}
+}
+
+// TestRunFiles runs the screening on user files written here (a CSV with a
+// schema: real, count, categorical columns and empty cells) and checks the
+// outputs: the scored file is read with the checkpoint's schema, the
+// reloaded model gives the same scores, the CSV has a row per record, and
+// the record with the shifted reading alarms with that column on top.
+func TestRunFiles(t *testing.T) {
+	dir := t.TempDir()
+	write := func(name, text string) string {
+		p := dir + "/" + name
+		if err := os.WriteFile(p, []byte(text), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		return p
+	}
+	row := func(b *strings.Builder, i int, shift float64, blank bool) {
+		a := math.Sin(float64(i) / 7)
+		v := strconv.FormatFloat(2*a+0.05*math.Cos(float64(i)), 'f', 4, 64)
+		if blank {
+			v = ""
+		}
+		fmt.Fprintf(b, "%s,%.4f,%d,%s\n", v, a+shift, i%3, []string{"on", "off"}[i%2])
+	}
+	var tr, sc strings.Builder
+	tr.WriteString("temp,press,starts,state\n")
+	sc.WriteString("temp,press,starts,state\n")
+	for i := 0; i < 1200; i++ {
+		row(&tr, i, 0, i%17 == 0)
+	}
+	for i := 0; i < 50; i++ {
+		shift := 0.0
+		if i == 7 {
+			shift = 8
+		}
+		row(&sc, i, shift, i%5 == 0)
+	}
+	cfg := tinyConfig(t)
+	cfg.TrainFile = write("train.csv", tr.String())
+	cfg.ScoreFile = write("score.csv", sc.String())
+	cfg.SchemaFile = write("schema.json", `{"columns": [{"name": "temp", "kind": "real"}, {"name": "press", "kind": "real"},
+ {"name": "starts", "kind": "count"}, {"name": "state", "kind": "categorical", "categories": ["on", "off"]}]}`)
+	cfg.Epochs = 30
+	res, err := runFiles(context.Background(), cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if res.Scored != 50 || res.MissingScored != 10 || res.MissingTrain != 71 {
+		t.Errorf("scored %d (missing %d), train missing %d; want 50, 10, 71", res.Scored, res.MissingScored, res.MissingTrain)
+	}
+	if res.ReloadMaxDiff != 0 {
+		t.Errorf("reloaded scores differ by %g", res.ReloadMaxDiff)
+	}
+	if !res.Alarms[7] || res.Top[7][0].Name != "press" {
+		t.Errorf("record 7 (press shifted by 8): alarm %v, top %v", res.Alarms[7], res.Top[7])
+	}
+	f, err := os.Open(res.ScoresCSV)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	rows, err := csv.NewReader(f).ReadAll()
+	if err != nil || len(rows) != 51 {
+		t.Fatalf("scores CSV: %d rows, %v", len(rows), err)
+	}
+	var rep bytes.Buffer
+	printFilesReport(&rep, cfg, res)
+	if !strings.Contains(rep.String(), "top inputs") {
+		t.Errorf("report:\n%s", rep.String())
+	}
+	// A category not in the schema names its line and column.
+	cfg.ScoreFile = write("bad.csv", "temp,press,starts,state\n1,2,0,on\n1,2,0,stalled\n")
+	if _, err := runFiles(context.Background(), cfg); err == nil || !strings.Contains(err.Error(), `line 3, column 4 ("state")`) {
+		t.Errorf("unknown category: err = %v", err)
+	}
+}
+
+// TestRunMissing runs the tiny fleet with dropouts: the report has the
+// imputation comparison at three rates and top inputs for every event.
+func TestRunMissing(t *testing.T) {
+	cfg := tinyConfig(t)
+	cfg.Missing = 0.2
+	res, err := run(context.Background(), cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(res.Imputation) != 3 {
+		t.Fatalf("imputation rows %+v", res.Imputation)
+	}
+	for _, r := range res.Imputation {
+		if r.Hidden == 0 || math.IsNaN(r.RMSEModel) || math.IsNaN(r.RMSEMean) || r.ModeAccModel < 0 || r.ModeAccModel > 1 {
+			t.Errorf("imputation row %+v", r)
+		}
+	}
+	for _, ev := range res.Events {
+		if len(ev.Top) != 3 || ev.Top[0].Excess < ev.Top[1].Excess {
+			t.Errorf("event %v: top inputs %+v", ev.Fault, ev.Top)
+		}
 	}
 }

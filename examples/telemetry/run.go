@@ -1,6 +1,7 @@
 package main
 
 import (
+	"cmp"
 	"context"
 	"encoding/csv"
 	"encoding/json"
@@ -9,12 +10,14 @@ import (
 	"image/color"
 	"io"
 	"math"
+	"math/rand/v2"
 	"os"
 	"path/filepath"
 	"slices"
 	"strconv"
 	"time"
 
+	"gonum.org/v1/gonum/mat"
 	"gorgonia.org/tensor"
 
 	"lowerbound.dev/examples/internal/detect"
@@ -69,6 +72,15 @@ type Config struct {
 	// Sigma > 0 fixes the Gaussian likelihood's standard deviation (in
 	// standardised units); zero learns one per sensor.
 	Sigma float64
+	// Missing is the fraction of sensor readings lost to transmitter
+	// dropouts in the invented fleet (fleet.FleetConfig.Missing).
+	Missing float64
+	// NoImpute skips the MCAR imputation comparison.
+	NoImpute bool
+	// TrainFile and ScoreFile, when set, replace the invented fleet with
+	// a user's CSV files (see runFiles); SchemaFile, optional, gives the
+	// schema as JSON (without it every column is real).
+	TrainFile, ScoreFile, SchemaFile string
 	// Log receives the report; nil discards it. Progress receives the
 	// training bar or epoch lines; nil means Log.
 	Log, Progress io.Writer
@@ -136,6 +148,29 @@ type EventResult struct {
 	// FirstFlag is the time from the event's first faulty record to its
 	// first record above the threshold, or -1 when none was.
 	FirstFlag time.Duration
+	// Top names the inputs that contribute most to the event's alarms:
+	// the columns with the largest mean contribution to the
+	// reconstruction term over its alarmed records (all its records when
+	// none alarmed), less their mean over the normal test records.
+	Top []Contribution
+}
+
+// Contribution is one input's excess contribution, in nats, to the
+// reconstruction term of the records it is computed over.
+type Contribution struct {
+	Name   string
+	Excess float64
+}
+
+// ImputeRow is the MCAR imputation comparison at one missing rate: the
+// model's conditional mean (vae.Model.Impute) against per-column mean
+// imputation (the training mean; for the mode, the training majority).
+type ImputeRow struct {
+	Rate                       float64
+	Hidden                     int     // sensor entries hidden
+	RMSEModel, RMSEMean        float64 // sensors, standardised units
+	ModeAccModel, ModeAccMajor float64 // operating mode, accuracy
+	StartsMAEModel, StartsMAE  float64 // starts, mean absolute error
 }
 
 // Result is what run produces besides its files.
@@ -168,6 +203,8 @@ type Result struct {
 	// the trained model and of the model read back from its checkpoint
 	// (with the standardisation read back too); it should be zero.
 	ReloadMaxDiff float64
+	// Imputation holds the MCAR imputation comparison (unless NoImpute).
+	Imputation []ImputeRow
 	// Paths of the files written.
 	Checkpoint, ScoresCSV, ScoresPNG, ROCPNG string
 	Duration                                 time.Duration
@@ -207,6 +244,12 @@ func (c Config) validate() error {
 		return fmt.Errorf("-latent %d: want >= 1", c.Latent)
 	case c.Sigma < 0 || math.IsNaN(c.Sigma):
 		return fmt.Errorf("-sigma %v: want >= 0", c.Sigma)
+	case !(c.Missing >= 0 && c.Missing <= 0.9):
+		return fmt.Errorf("-missing %v: want a fraction in [0, 0.9]", c.Missing)
+	case (c.TrainFile == "") != (c.ScoreFile == ""):
+		return fmt.Errorf("-train %q, -score %q: give both or neither", c.TrainFile, c.ScoreFile)
+	case c.SchemaFile != "" && c.TrainFile == "":
+		return fmt.Errorf("-schema %q: only with -train and -score", c.SchemaFile)
 	}
 	// The calibration needs enough records for alpha.
 	need, err := alarm.RecordsNeeded(c.Alpha)
@@ -251,23 +294,23 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	// 1. Invented data: train, validation (best epoch) and calibration
 	// (alarm threshold) days from the history, then the test period.
 	fl, err := fleet.GenerateFleet(fleet.FleetConfig{Stations: cfg.Stations, HistoryDays: cfg.HistoryDays, TestDays: cfg.TestDays,
-		Interval: cfg.Interval, Seed: cfg.Seed})
+		Interval: cfg.Interval, Seed: cfg.Seed, Missing: cfg.Missing})
 	if err != nil {
 		return res, err
 	}
 	calFrom := fleet.Start().AddDate(0, 0, cfg.HistoryDays-cfg.CalDays)
 	valFrom := calFrom.AddDate(0, 0, -cfg.ValDays)
-	trainRaw, heldOutRaw, testRaw, err := fl.Sets(valFrom)
+	trainRaw, heldOutRaw, testRaw, err := fl.MixedSets(valFrom)
 	if err != nil {
 		return res, err
 	}
 	_, heldOut := fleet.SplitAt(fl.History, valFrom)
 	valRecs, calRecs := fleet.SplitAt(heldOut, calFrom)
-	valRaw, err := fleet.ToSet(valRecs)
+	valRaw, err := fleet.ToMixedSet(valRecs)
 	if err != nil {
 		return res, fmt.Errorf("validation records: %w", err)
 	}
-	calRaw, err := fleet.ToSet(calRecs)
+	calRaw, err := fleet.ToMixedSet(calRecs)
 	if err != nil {
 		return res, fmt.Errorf("calibration records: %w", err)
 	}
@@ -275,8 +318,8 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		return res, fmt.Errorf("held-out split: %d + %d records, want %d", valRaw.Len(), calRaw.Len(), heldOutRaw.Len())
 	}
 	res.TrainRecords, res.ValRecords, res.CalRecords, res.TestRecords = trainRaw.Len(), valRaw.Len(), calRaw.Len(), testRaw.Len()
-	fmt.Fprintf(log, "fleet: %d stations (%s), %d sensors every %v; train %d records (%d days), validation %d (%d days), calibration %d (%d days), test %d (%d days) with %d injected faults\n",
-		cfg.Stations, typeSummary(fl.Stations), fleet.NumSensors, cfg.interval(), res.TrainRecords, cfg.HistoryDays-cfg.ValDays-cfg.CalDays,
+	fmt.Fprintf(log, "fleet: %d stations (%s), %d sensors, an operating mode and a start count every %v, %s of readings dropped out; train %d records (%d days), validation %d (%d days), calibration %d (%d days), test %d (%d days) with %d injected faults\n",
+		cfg.Stations, typeSummary(fl.Stations), fleet.NumSensors, cfg.interval(), pct(float64(testRaw.Missing()+trainRaw.Missing())/float64(fleet.NumSensors*(testRaw.Len()+trainRaw.Len()))), res.TrainRecords, cfg.HistoryDays-cfg.ValDays-cfg.CalDays,
 		res.ValRecords, cfg.ValDays, res.CalRecords, cfg.CalDays, res.TestRecords, cfg.TestDays, len(fl.Events))
 
 	for _, ev := range fl.Events {
@@ -288,8 +331,10 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 			what, ev.Start.Format("Jan 2 15:04"), ev.End.Format("Jan 2 15:04"))
 	}
 
-	// 2. Standardise with statistics of the training records only.
-	z, err := dataset.FitStandardizer(trainRaw)
+	// 2. Standardise the sensors with statistics of the training records
+	// only (observed readings; the mode and the starts stay raw).
+	schema := fleet.MixedSchema()
+	z, err := dataset.FitStandardizerSchema(trainRaw, schema)
 	if err != nil {
 		return res, err
 	}
@@ -306,14 +351,23 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		return res, err
 	}
 
-	// 3. Model: a VAE conditioned on the station type, Gaussian likelihood.
-	var lik losses.Likelihood = losses.Gaussian{Sigma: cfg.Sigma}
-	if cfg.Sigma == 0 {
-		if lik, err = losses.NewLearnedGaussian("likelihood", fleet.NumSensors, tensor.Float32); err != nil {
-			return res, err
+	// 3. Model: a VAE conditioned on the station type over mixed columns
+	// (Nazabal et al. 2020): Gaussian sensors, a categorical mode and a
+	// Poisson start count; dropped-out readings are skipped.
+	cols, err := vae.ColumnsFromSchema(schema, cfg.Sigma == 0)
+	if err != nil {
+		return res, err
+	}
+	for j := range cols {
+		if cols[j].Kind == losses.ColumnReal && cfg.Sigma > 0 {
+			cols[j].Sigma = cfg.Sigma
 		}
 	}
-	m, err := vae.NewMLP(vae.MLPConfig{Input: fleet.NumSensors, Hidden: cfg.Hidden, Latent: cfg.Latent, Classes: len(fleet.StationTypes()),
+	lik, err := losses.NewColumns("likelihood", cols, tensor.Float32)
+	if err != nil {
+		return res, err
+	}
+	m, err := vae.NewMLP(vae.MLPConfig{Input: fleet.NumColumns, Hidden: cfg.Hidden, Latent: cfg.Latent, Classes: len(fleet.StationTypes()),
 		Likelihood: lik, Seed: cfg.Seed})
 	if err != nil {
 		return res, err
@@ -366,6 +420,12 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 			return res, err
 		}
 	}
+	if err := m.SetSchema(schema); err != nil {
+		return res, err
+	}
+	if err := m.SetStandardizer(z); err != nil {
+		return res, err
+	}
 	if err := alarm.Put(m, res.Calibration); err != nil {
 		return res, err
 	}
@@ -380,7 +440,7 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	if err != nil {
 		return res, err
 	}
-	scores, err := scorer.score(ctx, testRaw, cfg.K, cfg.Seed)
+	scores, contrib, err := scorer.score(ctx, testRaw, cfg.K, cfg.Seed)
 	if err != nil {
 		return res, err
 	}
@@ -501,8 +561,25 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		res.Drift = append(res.Drift, DriftWindow{From: from, To: to, Drift: d, AllKS: allKS})
 	}
 
+	// Baseline contribution of each column over the normal test records.
+	nc := fleet.NumColumns
+	base := make([]float64, nc)
+	nNormal := 0
+	for i, r := range fl.Test {
+		if r.Fault == fleet.Normal {
+			for j := range nc {
+				base[j] += contrib.At(i, j)
+			}
+			nNormal++
+		}
+	}
+	for j := range base {
+		base[j] /= math.Max(1, float64(nNormal))
+	}
+	colNames := schema.Names()
 	for _, ev := range fl.Events {
 		er := EventResult{FaultEvent: ev, FirstFlag: -1}
+		sum, sumAll := make([]float64, nc), make([]float64, nc)
 		var onset time.Time
 		for i, r := range fl.Test {
 			if r.Station != ev.Station || r.Fault != ev.Fault {
@@ -515,6 +592,12 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 			if screened[i] {
 				er.Screened++
 			}
+			for j := range nc {
+				sumAll[j] += contrib.At(i, j)
+				if alarms[i] {
+					sum[j] += contrib.At(i, j)
+				}
+			}
 			if alarms[i] {
 				if er.Flagged == 0 {
 					er.FirstFlag = r.Time.Sub(onset)
@@ -522,10 +605,23 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 				er.Flagged++
 			}
 		}
+		over := float64(er.Flagged)
+		if er.Flagged == 0 {
+			sum, over = sumAll, float64(er.Records)
+		}
+		er.Top = topContributions(colNames, sum, over, base, 3)
 		res.Events = append(res.Events, er)
 	}
 
-	// 10. Files.
+	// 10. Imputation: hide readings of clean test records completely at
+	// random and impute them.
+	if !cfg.NoImpute {
+		if res.Imputation, err = imputeCheck(ctx, m, z, trainRaw, fl.TestClean, cfg.Seed); err != nil {
+			return res, err
+		}
+	}
+
+	// 11. Files.
 	res.ScoresCSV = filepath.Join(cfg.Out, "scores.csv")
 	if err := writeScores(res.ScoresCSV, fl, scores, pvalues, alarms, screened); err != nil {
 		return res, err
@@ -603,16 +699,12 @@ func loadScorer(path string) (*scorer, error) {
 	if err != nil {
 		return nil, err
 	}
-	extra := m.Extra()
-	var z dataset.Standardizer
-	if err := json.Unmarshal([]byte(extra[extraStandardizer]), &z); err != nil {
-		return nil, fmt.Errorf("%s: metadata %s: %w", path, extraStandardizer, err)
+	z, ok, err := m.Standardizer()
+	if err == nil && !ok {
+		err = errors.New("no standardizer in the metadata")
 	}
-	if err := z.Validate(); err != nil {
-		return nil, fmt.Errorf("%s: metadata %s: %w", path, extraStandardizer, err)
-	}
-	if len(z.Mean) != m.Features() {
-		return nil, fmt.Errorf("%s: standardisation has %d features, model %d", path, len(z.Mean), m.Features())
+	if err != nil {
+		return nil, fmt.Errorf("%s: %w", path, err)
 	}
 	cal, err := alarm.Get(m)
 	if err != nil {
@@ -621,13 +713,118 @@ func loadScorer(path string) (*scorer, error) {
 	return &scorer{model: m, z: z, cal: cal}, nil
 }
 
-// score standardises raw records and scores them.
-func (s *scorer) score(ctx context.Context, raw *dataset.Set, k int, seed uint64) ([]float64, error) {
+// score standardises raw records and scores them, with each column's
+// contribution to the reconstruction term (N, columns).
+func (s *scorer) score(ctx context.Context, raw *dataset.Set, k int, seed uint64) ([]float64, *mat.Dense, error) {
 	x, err := s.z.Apply(raw)
+	if err != nil {
+		return nil, nil, err
+	}
+	return s.model.ScoreColumns(ctx, x, vae.ScoreOptions{K: k, Seed: seed})
+}
+
+// topContributions returns the n columns whose mean contribution
+// sum[j]/over most exceeds base[j].
+func topContributions(names []string, sum []float64, over float64, base []float64, n int) []Contribution {
+	var out []Contribution
+	for j := range sum {
+		out = append(out, Contribution{Name: names[j], Excess: sum[j]/math.Max(over, 1) - base[j]})
+	}
+	slices.SortStableFunc(out, func(a, b Contribution) int { return cmp.Compare(b.Excess, a.Excess) })
+	return out[:min(n, len(out))]
+}
+
+// imputeCheck hides entries of up to 2000 clean test records (no faults,
+// no dropouts) completely at random at 10%, 30% and 50%, imputes them with
+// the model (conditional mean at the posterior mean, mode for the
+// operating mode) and with per-column means of the training records, and
+// compares the errors on the hidden entries.
+func imputeCheck(ctx context.Context, m *vae.Model, z dataset.Standardizer, trainRaw *dataset.Set, clean []fleet.Record, seed uint64) ([]ImputeRow, error) {
+	recs := clean
+	if len(recs) > 2000 {
+		step := len(recs) / 2000
+		recs = nil
+		for i := 0; i < len(clean) && len(recs) < 2000; i += step {
+			recs = append(recs, clean[i])
+		}
+	}
+	for i := range recs {
+		recs[i].Dropped = [fleet.NumSensors]bool{}
+	}
+	raw, err := fleet.ToMixedSet(recs)
 	if err != nil {
 		return nil, err
 	}
-	return s.model.Score(ctx, x, vae.ScoreOptions{K: k, Seed: seed})
+	full, err := z.Apply(raw)
+	if err != nil {
+		return nil, err
+	}
+	// Training statistics: the majority mode and the mean start count
+	// (the sensors' means are 0 after standardisation).
+	counts := make([]int, len(fleet.Modes()))
+	startsMean, nStarts := 0.0, 0
+	for i := 0; i < trainRaw.Len(); i++ {
+		row := trainRaw.Row(i)
+		counts[int(row[fleet.ModeColumn])]++
+		startsMean += row[fleet.StartsColumn]
+		nStarts++
+	}
+	startsMean /= float64(max(nStarts, 1))
+	major := slices.Index(counts, slices.Max(counts))
+	var rows []ImputeRow
+	for _, rate := range []float64{0.1, 0.3, 0.5} {
+		rng := rand.New(rand.NewPCG(seed, uint64(rate*1000)))
+		obs := make([]bool, full.Len()*fleet.NumColumns)
+		for k := range obs {
+			obs[k] = rng.Float64() >= rate
+		}
+		hidden, err := full.WithMissing(obs)
+		if err != nil {
+			return nil, err
+		}
+		imp, err := m.Impute(ctx, hidden)
+		if err != nil {
+			return nil, err
+		}
+		r := ImputeRow{Rate: rate}
+		var se, seMean, absM, absMean float64
+		var modeOK, modeMajor, nMode, nStartsH int
+		for i := 0; i < full.Len(); i++ {
+			truth := full.Row(i)
+			for j := range fleet.NumColumns {
+				if obs[i*fleet.NumColumns+j] {
+					continue
+				}
+				v, t := imp.At(i, j), truth[j]
+				switch j {
+				case fleet.ModeColumn:
+					nMode++
+					if v == t {
+						modeOK++
+					}
+					if float64(major) == t {
+						modeMajor++
+					}
+				case fleet.StartsColumn:
+					nStartsH++
+					absM += math.Abs(v - t)
+					absMean += math.Abs(startsMean - t)
+				default:
+					r.Hidden++
+					se += (v - t) * (v - t)
+					seMean += t * t
+				}
+			}
+		}
+		r.RMSEModel = math.Sqrt(se / float64(max(r.Hidden, 1)))
+		r.RMSEMean = math.Sqrt(seMean / float64(max(r.Hidden, 1)))
+		r.ModeAccModel = float64(modeOK) / float64(max(nMode, 1))
+		r.ModeAccMajor = float64(modeMajor) / float64(max(nMode, 1))
+		r.StartsMAEModel = absM / float64(max(nStartsH, 1))
+		r.StartsMAE = absMean / float64(max(nStartsH, 1))
+		rows = append(rows, r)
+	}
+	return rows, nil
 }
 
 func writeScores(path string, fl *fleet.Fleet, scores, pvalues []float64, alarms, screened []bool) (err error) {

@@ -29,6 +29,18 @@ type CSVOptions struct {
 	// Ignore names columns to skip (identifiers, free text). It may not be
 	// combined with Columns.
 	Ignore []string
+	// Schema, when not nil, gives the feature columns (its names, in its
+	// order; Columns must then be empty) and their kinds: a categorical
+	// column's cells are category strings, stored as their index in
+	// Categories; other cells must be numbers that fit the kind (a
+	// positive column > 0, a count a non-negative integer, a binary column
+	// 0 or 1).
+	Schema *Schema
+	// Missing opts in to missing values: an empty cell, or a cell reading
+	// NaN or NA (any case), becomes a missing entry (NaN in the Set; see
+	// NewMissing). Without it such a cell is an error naming line and
+	// column.
+	Missing bool
 }
 
 // ReadCSV reads records from CSV text whose first row is a header of column
@@ -61,6 +73,17 @@ func ReadCSV(r io.Reader, name string, opt CSVOptions) (*Set, []string, error) {
 	}
 	if len(opt.Columns) > 0 && len(opt.Ignore) > 0 {
 		return nil, nil, argError(where, "opt.Ignore", "cannot be combined with opt.Columns")
+	}
+	var schema []SchemaColumn
+	if opt.Schema != nil {
+		if len(opt.Columns) > 0 || len(opt.Ignore) > 0 {
+			return nil, nil, argError(where, "opt.Schema", "cannot be combined with opt.Columns or opt.Ignore")
+		}
+		if err := opt.Schema.Validate(); err != nil {
+			return nil, nil, fmt.Errorf("%s: opt.Schema: %w", where, err)
+		}
+		schema = opt.Schema.Columns
+		opt.Columns = opt.Schema.Names()
 	}
 	cr := csv.NewReader(r)
 	if opt.Comma != 0 {
@@ -149,7 +172,7 @@ func ReadCSV(r io.Reader, name string, opt CSVOptions) (*Set, []string, error) {
 
 	var x []float64
 	var labels []int
-	n := 0
+	n, missing := 0, 0
 	for {
 		rec, err := cr.Read()
 		if err == io.EOF {
@@ -166,10 +189,23 @@ func ReadCSV(r io.Reader, name string, opt CSVOptions) (*Set, []string, error) {
 			l, _ := cr.FieldPos(j)
 			return dataError(where, "%s: line %d, column %d (%q): %s", name, l, j+1, header[j], fmt.Sprintf(format, a...))
 		}
-		for _, j := range cols {
+		for k, j := range cols {
 			s := strings.TrimSpace(rec[j])
-			if s == "" {
-				return nil, nil, bad(j, "empty value")
+			if s == "" || opt.Missing && (strings.EqualFold(s, "nan") || strings.EqualFold(s, "na")) {
+				if !opt.Missing {
+					return nil, nil, bad(j, "empty value (set CSVOptions.Missing to read empty cells as missing)")
+				}
+				x = append(x, math.NaN())
+				missing++
+				continue
+			}
+			if schema != nil && schema[k].Kind == KindCategorical {
+				c := schema[k].CategoryIndex(s)
+				if c < 0 {
+					return nil, nil, bad(j, "value %q is not one of the column's categories %q", s, schema[k].Categories)
+				}
+				x = append(x, float64(c))
+				continue
 			}
 			v, err := strconv.ParseFloat(s, 64)
 			switch {
@@ -179,6 +215,11 @@ func ReadCSV(r io.Reader, name string, opt CSVOptions) (*Set, []string, error) {
 				return nil, nil, bad(j, "value %q is not a number", s)
 			case math.IsNaN(v) || math.IsInf(v, 0):
 				return nil, nil, bad(j, "value %q is not finite", s)
+			}
+			if schema != nil {
+				if msg := schema[k].checkValue(v); msg != "" {
+					return nil, nil, bad(j, "value %q %s", s, msg)
+				}
 			}
 			x = append(x, v)
 		}
@@ -201,7 +242,7 @@ func ReadCSV(r io.Reader, name string, opt CSVOptions) (*Set, []string, error) {
 	if n == 0 {
 		return nil, nil, dataError(where, "%s: no records after the header", name)
 	}
-	s := &Set{x: x, n: n, f: len(cols), shape: []int{len(cols)}}
+	s := &Set{x: x, n: n, f: len(cols), shape: []int{len(cols)}, missing: missing}
 	if label >= 0 {
 		classes, err := checkLabels(where, name, labels, opt.Classes)
 		if err != nil {

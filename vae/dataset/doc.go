@@ -84,6 +84,27 @@
 // position and name. Reading n bytes of CSV allocates at most 256*n bytes
 // plus 64 KiB (rows of numbers about 20*n).
 //
+// # Mixed columns and missing values
+//
+// A Schema (JSON-ready; ReadSchema reads one strictly) names each column
+// and its kind: real, positive, count, binary or categorical (with its
+// category strings). ReadCSV with CSVOptions.Schema reads exactly the
+// schema's columns, maps category strings to their index and checks every
+// value against its kind (errors name line and column).
+//
+// Missing values are an opt-in. By default a NaN is an error naming the
+// record and feature. NewMissing, Set.WithMissing and CSVOptions.Missing
+// (an empty cell, NaN or NA means missing) make a Set whose missing
+// entries are NaN: Missing counts them, Observed and FillMask give the
+// observation mask, Subset and Split keep them, and FitStandardizer
+// averages over the observed entries only (FitStandardizerSchema leaves
+// non-real columns unscaled).
+//
+// Records stay in the raw-record layout, one value per schema column (a
+// category as its index, a missing entry as NaN); the model-input layout
+// (one-hot categories, zero-filled values and the mask) is built by the
+// model from it.
+//
 // # Standardizing
 //
 // FitStandardizer computes each feature's mean and population standard

@@ -54,6 +54,10 @@ type Set struct {
 	labels  []int // len n, or nil
 	classes int   // 0 when labels is nil
 	shape   []int // product f; [f] by default
+	// missing counts the NaN entries, which mark missing values; only
+	// NewMissing, WithMissing and ReadCSV with CSVOptions.Missing make a
+	// Set that may hold them.
+	missing int
 }
 
 // New returns a Set of n records with f features each, copied from x
@@ -100,6 +104,111 @@ func checkFinite(where, file string, x []float64, f int) error {
 		}
 	}
 	return nil
+}
+
+// NewMissing is New for data with missing values: a NaN in x marks a
+// missing entry (an opt-in: New rejects NaN). Infinities are still an
+// error naming the record and feature.
+func NewMissing(x []float64, n, f int) (*Set, error) {
+	const where = "dataset.NewMissing"
+	nan := slices.Clone(x)
+	for k, v := range nan {
+		if math.IsNaN(v) {
+			nan[k] = 0
+		}
+	}
+	if _, err := New(nan, n, f); err != nil {
+		return nil, fmt.Errorf("%s: %w", where, err)
+	}
+	s := &Set{x: slices.Clone(x), n: n, f: f, shape: []int{f}}
+	if s.x == nil {
+		s.x = []float64{}
+	}
+	s.missing = countNaN(s.x)
+	return s, nil
+}
+
+func countNaN(x []float64) int {
+	c := 0
+	for _, v := range x {
+		if math.IsNaN(v) {
+			c++
+		}
+	}
+	return c
+}
+
+// WithMissing returns a copy of s in which entry k (row-major, record
+// k/F, feature k%F) is missing where observed[k] is false, for example to
+// hide values at random and measure imputation. Entries already missing
+// stay missing.
+func (s *Set) WithMissing(observed []bool) (*Set, error) {
+	const where = "dataset.Set.WithMissing"
+	if s == nil {
+		return nil, argError(where, "s", "nil Set")
+	}
+	if len(observed) != len(s.x) {
+		return nil, argError(where, "observed", "length %d, want N*F = %d", len(observed), len(s.x))
+	}
+	c := s.clone()
+	c.x = slices.Clone(s.x)
+	for k, ok := range observed {
+		if !ok {
+			c.x[k] = math.NaN()
+		}
+	}
+	c.missing = countNaN(c.x)
+	return c, nil
+}
+
+// Missing returns the number of missing entries (NaN) in s.
+func (s *Set) Missing() int { return s.missing }
+
+// Observed reports whether feature j of record i is observed (not NaN).
+func (s *Set) Observed(i, j int) bool { return !math.IsNaN(s.x[i*s.f+j]) }
+
+// FillMask writes the observation mask of the records at idx (1 observed,
+// 0 missing), row-major, into the start of dst, a []float32 or []float64
+// of length at least len(idx)*Features().
+func (s *Set) FillMask(dst any, idx []int) error {
+	const where = "dataset.Set.FillMask"
+	if s == nil {
+		return argError(where, "s", "nil Set")
+	}
+	if err := s.checkIndex(where, idx); err != nil {
+		return err
+	}
+	need := len(idx) * s.f
+	switch d := dst.(type) {
+	case []float64:
+		if len(d) < need {
+			return argError(where, "dst", "length %d, want at least %d", len(d), need)
+		}
+		for k, i := range idx {
+			for j, v := range s.x[i*s.f : (i+1)*s.f] {
+				d[k*s.f+j] = b2f(!math.IsNaN(v))
+			}
+		}
+	case []float32:
+		if len(d) < need {
+			return argError(where, "dst", "length %d, want at least %d", len(d), need)
+		}
+		for k, i := range idx {
+			for j, v := range s.x[i*s.f : (i+1)*s.f] {
+				d[k*s.f+j] = float32(b2f(!math.IsNaN(v)))
+			}
+		}
+	default:
+		return argError(where, "dst", "type %T, want []float32 or []float64", dst)
+	}
+	return nil
+}
+
+func b2f(b bool) float64 {
+	if b {
+		return 1
+	}
+	return 0
 }
 
 // FromRows returns a Set with one record per row. All rows must have the
@@ -297,6 +406,9 @@ func (s *Set) Subset(idx []int) (*Set, error) {
 	for k, i := range idx {
 		copy(c.x[k*s.f:(k+1)*s.f], s.x[i*s.f:(i+1)*s.f])
 	}
+	if s.missing > 0 {
+		c.missing = countNaN(c.x)
+	}
 	if s.labels != nil {
 		c.labels = make([]int, len(idx))
 		for k, i := range idx {
@@ -434,6 +546,8 @@ func (s *Set) Binarize(threshold float64) (*Set, error) {
 	for k, v := range s.x {
 		if v >= threshold {
 			c.x[k] = 1
+		} else if math.IsNaN(v) {
+			c.x[k] = v // missing stays missing
 		}
 	}
 	return c, nil
@@ -454,8 +568,19 @@ func (s *Set) Scale(factor float64) (*Set, error) {
 	for k, v := range s.x {
 		c.x[k] = v * factor
 	}
-	if err := checkFinite(where, "", c.x, s.f); err != nil { // overflow to Inf
+	if err := checkFiniteOrMissing(where, c.x, s.f, s.missing > 0); err != nil { // overflow to Inf
 		return nil, err
 	}
 	return c, nil
+}
+
+// checkFiniteOrMissing is checkFinite that, when missing is set, lets NaN
+// (a missing entry) through.
+func checkFiniteOrMissing(where string, x []float64, f int, missing bool) error {
+	for k, v := range x {
+		if math.IsInf(v, 0) || math.IsNaN(v) && !missing {
+			return dataError(where, "record %d, feature %d: value %v is not finite", k/f, k%f, v)
+		}
+	}
+	return nil
 }

@@ -26,21 +26,32 @@ func FitStandardizer(s *Set) (Standardizer, error) {
 	if s.n == 0 {
 		return Standardizer{}, argError(where, "s", "no records")
 	}
-	f, n := s.f, float64(s.n)
+	f := s.f
+	// Per feature over its observed (non-NaN) entries; a feature with none
+	// gets mean 0 and Std 1.
+	cnt := make([]float64, f)
 	mean := make([]float64, f)
 	for i := range s.n {
 		for j, v := range s.x[i*f : (i+1)*f] {
-			mean[j] += v
+			if !math.IsNaN(v) {
+				mean[j] += v
+				cnt[j]++
+			}
 		}
 	}
 	for j := range mean {
-		mean[j] /= n
+		if cnt[j] > 0 {
+			mean[j] /= cnt[j]
+		}
 	}
 	// Two-pass, corrected sum of squares: sum d^2 - (sum d)^2 / n.
 	ss := make([]float64, f)
 	comp := make([]float64, f)
 	for i := range s.n {
 		for j, v := range s.x[i*f : (i+1)*f] {
+			if math.IsNaN(v) {
+				continue
+			}
 			d := v - mean[j]
 			ss[j] += d * d
 			comp[j] += d
@@ -48,6 +59,7 @@ func FitStandardizer(s *Set) (Standardizer, error) {
 	}
 	std := make([]float64, f)
 	for j := range std {
+		n := math.Max(cnt[j], 1)
 		v := (ss[j] - comp[j]*comp[j]/n) / n
 		sd := math.Sqrt(math.Max(v, 0))
 		if sd == 0 || sd <= 1e-12*math.Abs(mean[j]) || math.IsInf(sd, 0) {
@@ -57,6 +69,27 @@ func FitStandardizer(s *Set) (Standardizer, error) {
 		mean[j] += comp[j] / n // second-pass correction of the mean's rounding
 	}
 	return Standardizer{Mean: mean, Std: std}, nil
+}
+
+// FitStandardizerSchema is FitStandardizer for records described by sc:
+// only real columns are standardised; the others (positive, count,
+// binary, categorical, whose likelihoods need the raw values) get Mean 0
+// and Std 1, so Apply leaves them unchanged.
+func FitStandardizerSchema(s *Set, sc Schema) (Standardizer, error) {
+	const where = "dataset.FitStandardizerSchema"
+	z, err := FitStandardizer(s)
+	if err != nil {
+		return z, err
+	}
+	if len(sc.Columns) != len(z.Mean) {
+		return Standardizer{}, argError(where, "sc", "%d columns, the set has %d features", len(sc.Columns), len(z.Mean))
+	}
+	for j, c := range sc.Columns {
+		if c.Kind != KindReal {
+			z.Mean[j], z.Std[j] = 0, 1
+		}
+	}
+	return z, nil
 }
 
 // Validate checks that Mean and Std have the same, non-zero length, every
@@ -103,7 +136,7 @@ func (z Standardizer) mapSet(where string, s *Set, inverse bool) (*Set, error) {
 	c.x = make([]float64, len(s.x))
 	copy(c.x, s.x)
 	z.apply64(c.x, inverse)
-	if err := checkFinite(where, "", c.x, s.f); err != nil {
+	if err := checkFiniteOrMissing(where, c.x, s.f, s.missing > 0); err != nil {
 		return nil, err
 	}
 	return c, nil

@@ -30,6 +30,14 @@
 // ToSet turns records into a dataset.Set (raw sensor readings, labelled by
 // station type) for the SDK's models; standardise it before training.
 //
+// Every record also has an operating mode (Record.Mode, an index into
+// Modes(): the drive's speed band) and a count of starts and stops
+// (Record.Starts); with FleetConfig.Missing > 0 sensors drop out in bursts
+// (Record.Dropped; Values keeps the true reading). ToMixedSet gives the
+// mixed records of MixedSchema (sensors real, NaN where dropped out; mode
+// categorical; starts a count). Mode, starts and dropouts come from
+// generators of their own, so the readings do not depend on them.
+//
 // The same FleetConfig always gives the same records: every random draw
 // comes from PCG generators seeded with FleetConfig.Seed. The first record
 // of every station is at Start(), so the history's day d begins at

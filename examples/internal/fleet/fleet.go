@@ -110,7 +110,19 @@ type Record struct {
 	Time    time.Time
 	Values  [NumSensors]float64
 	Fault   Fault
+	// Mode is the operating mode, an index into Modes(): the drive's
+	// speed band (low, normal, high).
+	Mode int
+	// Starts counts the pump's starts and stops during the interval
+	// before the record.
+	Starts int
+	// Dropped marks the readings lost to a transmitter dropout
+	// (FleetConfig.Missing); Values still holds the true reading.
+	Dropped [NumSensors]bool
 }
+
+// Modes returns the names of the operating modes, in index order.
+func Modes() []string { return []string{"low", "normal", "high"} }
 
 // FaultEvent is one fault injected into the test period.
 type FaultEvent struct {
@@ -128,6 +140,10 @@ type FleetConfig struct {
 	TestDays    int           // days of the test period, >= 1
 	Interval    time.Duration // sampling interval; zero means 10 minutes
 	Seed        uint64
+	// Missing is the long-run fraction of sensor readings lost to
+	// transmitter dropouts, in [0, 0.9]: each sensor of each station
+	// drops out in bursts of 3 records on average. Zero loses none.
+	Missing float64
 }
 
 // Fleet is the generated data set.
@@ -160,6 +176,9 @@ func GenerateFleet(cfg FleetConfig) (*Fleet, error) {
 	}
 	if cfg.Interval == 0 {
 		cfg.Interval = 10 * time.Minute
+	}
+	if !(cfg.Missing >= 0 && cfg.Missing <= 0.9) {
+		return nil, fmt.Errorf("GenerateFleet: Missing: %v, want a fraction in [0, 0.9]", cfg.Missing)
 	}
 	if cfg.Interval < time.Minute || cfg.Interval > 6*time.Hour {
 		return nil, fmt.Errorf("GenerateFleet: Interval: %v, want between 1m and 6h", cfg.Interval)
@@ -219,7 +238,68 @@ func GenerateFleet(cfg FleetConfig) (*Fleet, error) {
 		ev := injectFault(kind, f.Stations[i], types[f.Stations[i].Type], recs, clean, cfg.Interval, rng)
 		f.Events = append(f.Events, ev)
 	}
+	// Operating mode, starts and dropouts, from generators of their own
+	// so that the readings above do not depend on them.
+	for i := range cfg.Stations {
+		hist := f.History[i*nHist : (i+1)*nHist]
+		test, clean := f.Test[i*nTest:(i+1)*nTest], f.TestClean[i*nTest:(i+1)*nTest]
+		ty := types[f.Stations[i].Type]
+		modeRng := rand.New(rand.NewPCG(cfg.Seed, 0x30de+uint64(i)))
+		prev := -1.0
+		for _, part := range [][]Record{hist, clean} {
+			for j := range part {
+				sr := part[j].Values[Speed] / ty.SpeedNom
+				part[j].Mode = 1
+				if sr < 0.6 {
+					part[j].Mode = 0
+				} else if sr > 0.9 {
+					part[j].Mode = 2
+				}
+				rate := 0.05
+				if prev >= 0 {
+					rate += 3 * math.Abs(sr-prev)
+				}
+				prev = sr
+				part[j].Starts = poisson(modeRng, rate)
+			}
+		}
+		for j := range test {
+			test[j].Mode, test[j].Starts = clean[j].Mode, clean[j].Starts
+		}
+		if cfg.Missing > 0 {
+			dropRng := rand.New(rand.NewPCG(cfg.Seed, 0xd809+uint64(i)))
+			const burst = 3.0 // mean dropout length, records
+			recover := 1 / burst
+			start := cfg.Missing * recover / (1 - cfg.Missing)
+			for s := range NumSensors {
+				down := dropRng.Float64() < cfg.Missing
+				for _, part := range [][]Record{hist, test} {
+					for j := range part {
+						if down {
+							down = dropRng.Float64() >= recover
+						} else {
+							down = dropRng.Float64() < start
+						}
+						part[j].Dropped[s] = down
+					}
+				}
+			}
+		}
+	}
 	return f, nil
+}
+
+// poisson draws a Poisson count of the given (small) rate by counting
+// uniform products above exp(-rate) (Knuth, TAOCP vol. 2, 3.4.1).
+func poisson(rng *rand.Rand, rate float64) int {
+	l, k, p := math.Exp(-rate), 0, 1.0
+	for {
+		p *= rng.Float64()
+		if p <= l {
+			return k
+		}
+		k++
+	}
 }
 
 // demandCurve is the daily demand shape at hour h (0..24): a night trough,

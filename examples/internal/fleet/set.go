@@ -2,6 +2,7 @@ package fleet
 
 import (
 	"fmt"
+	"math"
 	"time"
 
 	"lowerbound.dev/vae/dataset"
@@ -29,6 +30,71 @@ func ToSet(recs []Record) (*dataset.Set, error) {
 		return nil, fmt.Errorf("ToSet: %w", err)
 	}
 	return s, nil
+}
+
+// Column indices of a mixed set (ToMixedSet) after the sensors.
+const (
+	ModeColumn   = NumSensors     // operating mode, categorical
+	StartsColumn = NumSensors + 1 // starts and stops, count
+	NumColumns   = NumSensors + 2
+)
+
+// MixedSchema returns the schema of ToMixedSet's records: the sensors as
+// real columns, the operating mode as a categorical column and the starts
+// as a count.
+func MixedSchema() dataset.Schema {
+	var sc dataset.Schema
+	for _, n := range SensorNames() {
+		sc.Columns = append(sc.Columns, dataset.SchemaColumn{Name: n, Kind: dataset.KindReal})
+	}
+	sc.Columns = append(sc.Columns,
+		dataset.SchemaColumn{Name: "mode", Kind: dataset.KindCategorical, Categories: Modes()},
+		dataset.SchemaColumn{Name: "starts", Kind: dataset.KindCount})
+	return sc
+}
+
+// ToMixedSet is ToSet for the mixed records of MixedSchema: the sensor
+// readings (NaN where dropped out, a missing entry), the operating mode
+// index and the start count, labelled by station type.
+func ToMixedSet(recs []Record) (*dataset.Set, error) {
+	x := make([]float64, 0, len(recs)*NumColumns)
+	labels := make([]int, len(recs))
+	for i, r := range recs {
+		for s, v := range r.Values {
+			if r.Dropped[s] {
+				v = math.NaN()
+			}
+			x = append(x, v)
+		}
+		x = append(x, float64(r.Mode), float64(r.Starts))
+		labels[i] = r.Type
+	}
+	s, err := dataset.NewMissing(x, len(recs), NumColumns)
+	if err != nil {
+		return nil, fmt.Errorf("ToMixedSet: %w", err)
+	}
+	if s, err = s.WithLabels(labels, len(StationTypes())); err != nil {
+		return nil, fmt.Errorf("ToMixedSet: %w", err)
+	}
+	if err := s.CheckSchema(MixedSchema()); err != nil {
+		return nil, fmt.Errorf("ToMixedSet: %w", err)
+	}
+	return s, nil
+}
+
+// MixedSets is Sets with ToMixedSet.
+func (f *Fleet) MixedSets(valFrom time.Time) (train, val, test *dataset.Set, err error) {
+	trainRecs, valRecs := SplitAt(f.History, valFrom)
+	if train, err = ToMixedSet(trainRecs); err != nil {
+		return nil, nil, nil, fmt.Errorf("training records: %w", err)
+	}
+	if val, err = ToMixedSet(valRecs); err != nil {
+		return nil, nil, nil, fmt.Errorf("validation records: %w", err)
+	}
+	if test, err = ToMixedSet(f.Test); err != nil {
+		return nil, nil, nil, fmt.Errorf("test records: %w", err)
+	}
+	return train, val, test, nil
 }
 
 // SplitAt splits records by time: those before t, and those at or after t,

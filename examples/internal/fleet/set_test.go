@@ -111,3 +111,57 @@ func TestCheckFlags(t *testing.T) {
 		}
 	}
 }
+
+// TestMixedSet checks the dropouts, the operating mode and the starts: the
+// dropped fraction is near FleetConfig.Missing, a dropped reading is
+// missing in the mixed set and every other value is the record's.
+func TestMixedSet(t *testing.T) {
+	f, err := GenerateFleet(FleetConfig{Stations: 3, HistoryDays: 4, TestDays: 2, Interval: 30 * time.Minute, Seed: 3, Missing: 0.2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	s, err := ToMixedSet(f.History)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if s.Features() != NumColumns || s.Len() != len(f.History) {
+		t.Fatalf("set %d x %d", s.Len(), s.Features())
+	}
+	dropped := 0
+	for i, r := range f.History {
+		row := s.Row(i)
+		for j := range NumSensors {
+			if r.Dropped[j] {
+				dropped++
+				if !math.IsNaN(row[j]) {
+					t.Fatalf("record %d sensor %d dropped but %v", i, j, row[j])
+				}
+			} else if row[j] != r.Values[j] {
+				t.Fatalf("record %d sensor %d: %v, want %v", i, j, row[j], r.Values[j])
+			}
+		}
+		if row[ModeColumn] != float64(r.Mode) || row[StartsColumn] != float64(r.Starts) {
+			t.Fatalf("record %d: mode %v starts %v, want %d %d", i, row[ModeColumn], row[StartsColumn], r.Mode, r.Starts)
+		}
+	}
+	frac := float64(dropped) / float64(len(f.History)*NumSensors)
+	// 36 sensor series of 192 records in bursts of 3: the fraction's
+	// standard deviation is a few percent; 0.08 is a loose bound.
+	if math.Abs(frac-0.2) > 0.08 {
+		t.Errorf("dropped fraction %v, want about 0.2", frac)
+	}
+	if s.Missing() != dropped {
+		t.Errorf("Missing %d, dropped %d", s.Missing(), dropped)
+	}
+	// Without dropouts the readings equal those of a fleet generated with
+	// them: dropouts only hide readings.
+	g, err := GenerateFleet(FleetConfig{Stations: 3, HistoryDays: 4, TestDays: 2, Interval: 30 * time.Minute, Seed: 3})
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i := range g.Test {
+		if g.Test[i].Values != f.Test[i].Values || g.Test[i].Mode != f.Test[i].Mode {
+			t.Fatalf("test record %d differs between Missing 0 and 0.2", i)
+		}
+	}
+}
