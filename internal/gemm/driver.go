@@ -165,16 +165,18 @@ func serial[T float](kn *kernel[T], tA, tB bool, m, n, k int, alpha T, a []T, ld
 }
 
 // macro runs the microkernel over every register tile of one mc×nc block of
-// C. Edge tiles go through buf.tmp so the kernel always writes a full tile.
+// C, column strip by column strip: one kc×nr strip of packed B stays in L1
+// while the mr-row strips of packed A stream past it from L2. Edge tiles go
+// through buf.tmp so the kernel always writes a full tile.
 func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], alpha, beta T, c []T, ldc int) {
 	mr, nr := kn.mr, kn.nr
 	tmp := buf.tmp
-	for ir := 0; ir < mcb; ir += mr {
-		rows := min(mr, mcb-ir)
-		pa := &buf.a[ir*kcb]
-		for jr := 0; jr < ncb; jr += nr {
-			cols := min(nr, ncb-jr)
-			pb := &buf.b[jr*kcb]
+	for jr := 0; jr < ncb; jr += nr {
+		cols := min(nr, ncb-jr)
+		pb := &buf.b[jr*kcb]
+		for ir := 0; ir < mcb; ir += mr {
+			rows := min(mr, mcb-ir)
+			pa := &buf.a[ir*kcb]
 			if rows == mr && cols == nr {
 				kn.micro(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta)
 				continue
@@ -212,7 +214,20 @@ func packA[T float](dst, a []T, lda int, tA bool, ic, pc, mcb, kcb, mr int) {
 			}
 			continue
 		}
-		for r := range rows { // op(A)[i][p] = a[i*lda+p]: one row of A per r
+		// op(A)[i][p] = a[i*lda+p]: rows of A, four at a time, become
+		// columns of the strip.
+		r := 0
+		for ; r+4 <= rows; r += 4 {
+			s0 := a[(i0+r)*lda+pc : (i0+r)*lda+pc+kcb]
+			s1 := a[(i0+r+1)*lda+pc : (i0+r+1)*lda+pc+kcb]
+			s2 := a[(i0+r+2)*lda+pc : (i0+r+2)*lda+pc+kcb]
+			s3 := a[(i0+r+3)*lda+pc : (i0+r+3)*lda+pc+kcb]
+			for p := range s0 {
+				d := strip[p*mr+r : p*mr+r+4 : p*mr+r+4]
+				d[0], d[1], d[2], d[3] = s0[p], s1[p], s2[p], s3[p]
+			}
+		}
+		for ; r < rows; r++ {
 			src := a[(i0+r)*lda+pc : (i0+r)*lda+pc+kcb]
 			for p, v := range src {
 				strip[p*mr+r] = v
@@ -231,20 +246,42 @@ func packA[T float](dst, a []T, lda int, tA bool, ic, pc, mcb, kcb, mr int) {
 // op(B)[pc+p][jc+s*nr+j] at dst[s*nr*kcb + p*nr + j]. Columns past ncb are
 // zero.
 func packB[T float](dst, b []T, ldb int, tB bool, pc, jc, kcb, ncb, nr int) {
+	if !tB {
+		// op(B)[p][j] = b[p*ldb+j]: each row of B is cut into strips.
+		full := ncb / nr
+		for p := range kcb {
+			row := b[(pc+p)*ldb+jc : (pc+p)*ldb+jc+ncb]
+			for s := range full {
+				o := s*nr*kcb + p*nr
+				copy(dst[o:o+nr:o+nr], row[s*nr:s*nr+nr])
+			}
+			if cols := ncb - full*nr; cols > 0 {
+				o := full*nr*kcb + p*nr
+				d := dst[o : o+nr : o+nr]
+				copy(d, row[full*nr:])
+				clear(d[cols:])
+			}
+		}
+		return
+	}
 	for s := 0; s*nr < ncb; s++ {
 		strip := dst[s*nr*kcb : (s+1)*nr*kcb]
 		cols := min(nr, ncb-s*nr)
 		j0 := jc + s*nr
-		if !tB { // op(B)[p][j] = b[p*ldb+j]: nr contiguous values per p
-			for p := range kcb {
-				src := b[(pc+p)*ldb+j0 : (pc+p)*ldb+j0+cols]
-				d := strip[p*nr : p*nr+nr]
-				copy(d, src)
-				clear(d[cols:])
+		// op(B)[p][j] = b[j*ldb+p]: rows of B, four at a time, become
+		// columns of the strip.
+		j := 0
+		for ; j+4 <= cols; j += 4 {
+			s0 := b[(j0+j)*ldb+pc : (j0+j)*ldb+pc+kcb]
+			s1 := b[(j0+j+1)*ldb+pc : (j0+j+1)*ldb+pc+kcb]
+			s2 := b[(j0+j+2)*ldb+pc : (j0+j+2)*ldb+pc+kcb]
+			s3 := b[(j0+j+3)*ldb+pc : (j0+j+3)*ldb+pc+kcb]
+			for p := range s0 {
+				d := strip[p*nr+j : p*nr+j+4 : p*nr+j+4]
+				d[0], d[1], d[2], d[3] = s0[p], s1[p], s2[p], s3[p]
 			}
-			continue
 		}
-		for j := range cols { // op(B)[p][j] = b[j*ldb+p]: one row of B per j
+		for ; j < cols; j++ {
 			src := b[(j0+j)*ldb+pc : (j0+j)*ldb+pc+kcb]
 			for p, v := range src {
 				strip[p*nr+j] = v
