@@ -177,6 +177,10 @@ func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], alpha, be
 		for ir := 0; ir < mcb; ir += mr {
 			rows := min(mr, mcb-ir)
 			pa := &buf.a[ir*kcb]
+			if kn.tile != nil {
+				kn.tile(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta, rows, cols)
+				continue
+			}
 			if rows == mr && cols == nr {
 				kn.micro(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta)
 				continue

@@ -27,7 +27,11 @@ type kernel[T float] struct {
 	mr, nr     int
 	kc, mc, nc int
 	micro      microFunc[T]
-	pool       sync.Pool // *buffers[T], reused across calls
+	// tile, when set, computes a tile of any rows <= mr and cols <= nr in
+	// place (same contract as micro otherwise); edge tiles then skip the
+	// detour through a scratch tile.
+	tile func(kc int, a, b, c *T, ldc int, alpha, beta T, rows, cols int)
+	pool sync.Pool // *buffers[T], reused across calls
 }
 
 // portable32 and portable64 are the pure-Go kernels: a 4×4 register tile,
