@@ -144,7 +144,17 @@ func serial[T float](kn *kernel[T], tA, tB bool, m, n, k int, alpha T, a []T, ld
 	kc := min(blockOf(k, kn.kc, 1), k)
 	mc := blockOf(m, kn.mc, mr)
 	nc := blockOf(n, kn.nc, nr)
-	buf := kn.get(mc*kc, nc*kc)
+	// op(B) = B is read in place, not packed, when the kernel can mask its
+	// edge columns and the rows of B fall in all 64 sets of a 4 KiB-period L1
+	// cache (stride gcd with 4096 at most 64 bytes), so that a kc×nr strip
+	// stays in L1 as a packed one would.
+	var zero T
+	direct := kn.tile != nil && !tB && gcd(ldb*int(unsafe.Sizeof(zero)), 4096) <= 64
+	nb := nc * kc
+	if direct {
+		nb = 0
+	}
+	buf := kn.get(mc*kc, nb)
 	defer kn.pool.Put(buf)
 	for jc := 0; jc < n; jc += nc {
 		ncb := min(nc, n-jc)
@@ -154,11 +164,16 @@ func serial[T float](kn *kernel[T], tA, tB bool, m, n, k int, alpha T, a []T, ld
 			if pc > 0 {
 				betaBlock = 1
 			}
-			packB(buf.b, b, ldb, tB, pc, jc, kcb, ncb, nr)
+			bp, bStride := buf.b, 0
+			if direct {
+				bp, bStride = b[pc*ldb+jc:], ldb
+			} else {
+				packB(buf.b, b, ldb, tB, pc, jc, kcb, ncb, nr)
+			}
 			for ic := 0; ic < m; ic += mc {
 				mcb := min(mc, m-ic)
 				packA(buf.a, a, lda, tA, ic, pc, mcb, kcb, mr)
-				macro(kn, mcb, ncb, kcb, buf, alpha, betaBlock, c[ic*ldc+jc:], ldc)
+				macro(kn, mcb, ncb, kcb, buf, bp, bStride, alpha, betaBlock, c[ic*ldc+jc:], ldc)
 			}
 		}
 	}
@@ -168,17 +183,22 @@ func serial[T float](kn *kernel[T], tA, tB bool, m, n, k int, alpha T, a []T, ld
 // C, column strip by column strip: one kc×nr strip of packed B stays in L1
 // while the mr-row strips of packed A stream past it from L2. Edge tiles go
 // through buf.tmp so the kernel always writes a full tile.
-func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], alpha, beta T, c []T, ldc int) {
+//
+// bp is packed B (bStride 0) or B itself, its rows bStride elements apart.
+func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], bp []T, bStride int, alpha, beta T, c []T, ldc int) {
 	mr, nr := kn.mr, kn.nr
 	tmp := buf.tmp
 	for jr := 0; jr < ncb; jr += nr {
 		cols := min(nr, ncb-jr)
-		pb := &buf.b[jr*kcb]
+		pb, ldb := &bp[jr*kcb], nr // packed: strips of kcb×nr
+		if bStride > 0 {
+			pb, ldb = &bp[jr], bStride // B itself
+		}
 		for ir := 0; ir < mcb; ir += mr {
 			rows := min(mr, mcb-ir)
 			pa := &buf.a[ir*kcb]
 			if kn.tile != nil {
-				kn.tile(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta, rows, cols)
+				kn.tile(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta, rows, cols, ldb)
 				continue
 			}
 			if rows == mr && cols == nr {
@@ -297,4 +317,11 @@ func packB[T float](dst, b []T, ldb int, tB bool, pc, jc, kcb, ncb, nr int) {
 			}
 		}
 	}
+}
+
+func gcd(a, b int) int {
+	for b != 0 {
+		a, b = b, a%b
+	}
+	return a
 }

@@ -28,9 +28,11 @@ type kernel[T float] struct {
 	kc, mc, nc int
 	micro      microFunc[T]
 	// tile, when set, computes a tile of any rows <= mr and cols <= nr in
-	// place (same contract as micro otherwise); edge tiles then skip the
-	// detour through a scratch tile.
-	tile func(kc int, a, b, c *T, ldc int, alpha, beta T, rows, cols int)
+	// place, reading only those columns of B, whose rows are ldb elements
+	// apart (nr for packed B); otherwise the same contract as micro. Edge
+	// tiles then skip the detour through a scratch tile, and op(B) = B can
+	// be read where it is, unpacked.
+	tile func(kc int, a, b, c *T, ldc int, alpha, beta T, rows, cols, ldb int)
 	pool sync.Pool // *buffers[T], reused across calls
 }
 

@@ -4,23 +4,25 @@
 
 #include "textflag.h"
 
-// func sgemmAVX512R1V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R1V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R1V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R1V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
 sgemmAVX512R1V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R1V1loop
 
@@ -43,14 +45,16 @@ sgemmAVX512R1V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R1V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R1V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R1V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R1V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -58,13 +62,13 @@ TEXT ·sgemmAVX512R1V2(SB), NOSPLIT, $0-56
 	VPXORQ Z0, Z0, Z0
 	VPXORQ Z1, Z1, Z1
 sgemmAVX512R1V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R1V2loop
 
@@ -91,26 +95,28 @@ sgemmAVX512R1V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R2V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R2V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R2V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R2V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
 	VPXORQ Z1, Z1, Z1
 sgemmAVX512R2V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
 	VFMADD231PS Z24, Z27, Z1
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R2V1loop
 
@@ -139,14 +145,16 @@ sgemmAVX512R2V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R2V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R2V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R2V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R2V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -156,8 +164,8 @@ TEXT ·sgemmAVX512R2V2(SB), NOSPLIT, $0-56
 	VPXORQ Z2, Z2, Z2
 	VPXORQ Z3, Z3, Z3
 sgemmAVX512R2V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -165,7 +173,7 @@ sgemmAVX512R2V2loop:
 	VFMADD231PS Z24, Z27, Z2
 	VFMADD231PS Z25, Z27, Z3
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R2V2loop
 
@@ -202,21 +210,23 @@ sgemmAVX512R2V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R3V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R3V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R3V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R3V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
 	VPXORQ Z1, Z1, Z1
 	VPXORQ Z2, Z2, Z2
 sgemmAVX512R3V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
@@ -224,7 +234,7 @@ sgemmAVX512R3V1loop:
 	VBROADCASTSS 8(SI), Z26
 	VFMADD231PS Z24, Z26, Z2
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R3V1loop
 
@@ -259,14 +269,16 @@ sgemmAVX512R3V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R3V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R3V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R3V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R3V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -278,8 +290,8 @@ TEXT ·sgemmAVX512R3V2(SB), NOSPLIT, $0-56
 	VPXORQ Z4, Z4, Z4
 	VPXORQ Z5, Z5, Z5
 sgemmAVX512R3V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -290,7 +302,7 @@ sgemmAVX512R3V2loop:
 	VFMADD231PS Z24, Z26, Z4
 	VFMADD231PS Z25, Z26, Z5
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R3V2loop
 
@@ -337,14 +349,16 @@ sgemmAVX512R3V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R4V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R4V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R4V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R4V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -352,7 +366,7 @@ TEXT ·sgemmAVX512R4V1(SB), NOSPLIT, $0-56
 	VPXORQ Z2, Z2, Z2
 	VPXORQ Z3, Z3, Z3
 sgemmAVX512R4V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
@@ -362,7 +376,7 @@ sgemmAVX512R4V1loop:
 	VBROADCASTSS 12(SI), Z27
 	VFMADD231PS Z24, Z27, Z3
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R4V1loop
 
@@ -403,14 +417,16 @@ sgemmAVX512R4V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R4V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R4V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R4V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R4V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -424,8 +440,8 @@ TEXT ·sgemmAVX512R4V2(SB), NOSPLIT, $0-56
 	VPXORQ Z6, Z6, Z6
 	VPXORQ Z7, Z7, Z7
 sgemmAVX512R4V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -439,7 +455,7 @@ sgemmAVX512R4V2loop:
 	VFMADD231PS Z24, Z27, Z6
 	VFMADD231PS Z25, Z27, Z7
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R4V2loop
 
@@ -496,14 +512,16 @@ sgemmAVX512R4V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R5V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R5V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R5V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R5V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -512,7 +530,7 @@ TEXT ·sgemmAVX512R5V1(SB), NOSPLIT, $0-56
 	VPXORQ Z3, Z3, Z3
 	VPXORQ Z4, Z4, Z4
 sgemmAVX512R5V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
@@ -524,7 +542,7 @@ sgemmAVX512R5V1loop:
 	VBROADCASTSS 16(SI), Z26
 	VFMADD231PS Z24, Z26, Z4
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R5V1loop
 
@@ -571,14 +589,16 @@ sgemmAVX512R5V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R5V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R5V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R5V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R5V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -594,8 +614,8 @@ TEXT ·sgemmAVX512R5V2(SB), NOSPLIT, $0-56
 	VPXORQ Z8, Z8, Z8
 	VPXORQ Z9, Z9, Z9
 sgemmAVX512R5V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -612,7 +632,7 @@ sgemmAVX512R5V2loop:
 	VFMADD231PS Z24, Z26, Z8
 	VFMADD231PS Z25, Z26, Z9
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R5V2loop
 
@@ -679,14 +699,16 @@ sgemmAVX512R5V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R6V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R6V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R6V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R6V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -696,7 +718,7 @@ TEXT ·sgemmAVX512R6V1(SB), NOSPLIT, $0-56
 	VPXORQ Z4, Z4, Z4
 	VPXORQ Z5, Z5, Z5
 sgemmAVX512R6V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
@@ -710,7 +732,7 @@ sgemmAVX512R6V1loop:
 	VBROADCASTSS 20(SI), Z27
 	VFMADD231PS Z24, Z27, Z5
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R6V1loop
 
@@ -763,14 +785,16 @@ sgemmAVX512R6V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R6V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R6V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R6V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R6V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -788,8 +812,8 @@ TEXT ·sgemmAVX512R6V2(SB), NOSPLIT, $0-56
 	VPXORQ Z10, Z10, Z10
 	VPXORQ Z11, Z11, Z11
 sgemmAVX512R6V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -809,7 +833,7 @@ sgemmAVX512R6V2loop:
 	VFMADD231PS Z24, Z27, Z10
 	VFMADD231PS Z25, Z27, Z11
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R6V2loop
 
@@ -886,14 +910,16 @@ sgemmAVX512R6V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R7V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R7V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R7V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R7V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -904,7 +930,7 @@ TEXT ·sgemmAVX512R7V1(SB), NOSPLIT, $0-56
 	VPXORQ Z5, Z5, Z5
 	VPXORQ Z6, Z6, Z6
 sgemmAVX512R7V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
@@ -920,7 +946,7 @@ sgemmAVX512R7V1loop:
 	VBROADCASTSS 24(SI), Z26
 	VFMADD231PS Z24, Z26, Z6
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R7V1loop
 
@@ -979,14 +1005,16 @@ sgemmAVX512R7V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R7V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R7V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R7V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R7V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -1006,8 +1034,8 @@ TEXT ·sgemmAVX512R7V2(SB), NOSPLIT, $0-56
 	VPXORQ Z12, Z12, Z12
 	VPXORQ Z13, Z13, Z13
 sgemmAVX512R7V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -1030,7 +1058,7 @@ sgemmAVX512R7V2loop:
 	VFMADD231PS Z24, Z26, Z12
 	VFMADD231PS Z25, Z26, Z13
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R7V2loop
 
@@ -1117,14 +1145,16 @@ sgemmAVX512R7V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R8V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R8V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R8V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R8V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -1136,7 +1166,7 @@ TEXT ·sgemmAVX512R8V1(SB), NOSPLIT, $0-56
 	VPXORQ Z6, Z6, Z6
 	VPXORQ Z7, Z7, Z7
 sgemmAVX512R8V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
@@ -1154,7 +1184,7 @@ sgemmAVX512R8V1loop:
 	VBROADCASTSS 28(SI), Z27
 	VFMADD231PS Z24, Z27, Z7
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R8V1loop
 
@@ -1219,14 +1249,16 @@ sgemmAVX512R8V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R8V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R8V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R8V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R8V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -1248,8 +1280,8 @@ TEXT ·sgemmAVX512R8V2(SB), NOSPLIT, $0-56
 	VPXORQ Z14, Z14, Z14
 	VPXORQ Z15, Z15, Z15
 sgemmAVX512R8V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -1275,7 +1307,7 @@ sgemmAVX512R8V2loop:
 	VFMADD231PS Z24, Z27, Z14
 	VFMADD231PS Z25, Z27, Z15
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R8V2loop
 
@@ -1372,14 +1404,16 @@ sgemmAVX512R8V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R9V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R9V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R9V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R9V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -1392,7 +1426,7 @@ TEXT ·sgemmAVX512R9V1(SB), NOSPLIT, $0-56
 	VPXORQ Z7, Z7, Z7
 	VPXORQ Z8, Z8, Z8
 sgemmAVX512R9V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
@@ -1412,7 +1446,7 @@ sgemmAVX512R9V1loop:
 	VBROADCASTSS 32(SI), Z26
 	VFMADD231PS Z24, Z26, Z8
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R9V1loop
 
@@ -1483,14 +1517,16 @@ sgemmAVX512R9V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R9V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R9V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R9V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R9V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -1514,8 +1550,8 @@ TEXT ·sgemmAVX512R9V2(SB), NOSPLIT, $0-56
 	VPXORQ Z16, Z16, Z16
 	VPXORQ Z17, Z17, Z17
 sgemmAVX512R9V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -1544,7 +1580,7 @@ sgemmAVX512R9V2loop:
 	VFMADD231PS Z24, Z26, Z16
 	VFMADD231PS Z25, Z26, Z17
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R9V2loop
 
@@ -1651,14 +1687,16 @@ sgemmAVX512R9V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R10V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R10V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R10V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R10V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -1672,7 +1710,7 @@ TEXT ·sgemmAVX512R10V1(SB), NOSPLIT, $0-56
 	VPXORQ Z8, Z8, Z8
 	VPXORQ Z9, Z9, Z9
 sgemmAVX512R10V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
@@ -1694,7 +1732,7 @@ sgemmAVX512R10V1loop:
 	VBROADCASTSS 36(SI), Z27
 	VFMADD231PS Z24, Z27, Z9
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R10V1loop
 
@@ -1771,14 +1809,16 @@ sgemmAVX512R10V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R10V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R10V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R10V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R10V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -1804,8 +1844,8 @@ TEXT ·sgemmAVX512R10V2(SB), NOSPLIT, $0-56
 	VPXORQ Z18, Z18, Z18
 	VPXORQ Z19, Z19, Z19
 sgemmAVX512R10V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -1837,7 +1877,7 @@ sgemmAVX512R10V2loop:
 	VFMADD231PS Z24, Z27, Z18
 	VFMADD231PS Z25, Z27, Z19
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R10V2loop
 
@@ -1954,14 +1994,16 @@ sgemmAVX512R10V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R11V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R11V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R11V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R11V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -1976,7 +2018,7 @@ TEXT ·sgemmAVX512R11V1(SB), NOSPLIT, $0-56
 	VPXORQ Z9, Z9, Z9
 	VPXORQ Z10, Z10, Z10
 sgemmAVX512R11V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
@@ -2000,7 +2042,7 @@ sgemmAVX512R11V1loop:
 	VBROADCASTSS 40(SI), Z26
 	VFMADD231PS Z24, Z26, Z10
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R11V1loop
 
@@ -2083,14 +2125,16 @@ sgemmAVX512R11V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R11V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R11V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R11V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R11V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -2118,8 +2162,8 @@ TEXT ·sgemmAVX512R11V2(SB), NOSPLIT, $0-56
 	VPXORQ Z20, Z20, Z20
 	VPXORQ Z21, Z21, Z21
 sgemmAVX512R11V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -2154,7 +2198,7 @@ sgemmAVX512R11V2loop:
 	VFMADD231PS Z24, Z26, Z20
 	VFMADD231PS Z25, Z26, Z21
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R11V2loop
 
@@ -2281,14 +2325,16 @@ sgemmAVX512R11V2nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R12V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R12V1(SB), NOSPLIT, $0-56
+// func sgemmAVX512R12V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R12V1(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -2304,7 +2350,7 @@ TEXT ·sgemmAVX512R12V1(SB), NOSPLIT, $0-56
 	VPXORQ Z10, Z10, Z10
 	VPXORQ Z11, Z11, Z11
 sgemmAVX512R12V1loop:
-	VMOVUPS 0(DI), Z24
+	VMOVUPS.Z 0(DI), K1, Z24
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VBROADCASTSS 4(SI), Z27
@@ -2330,7 +2376,7 @@ sgemmAVX512R12V1loop:
 	VBROADCASTSS 44(SI), Z27
 	VFMADD231PS Z24, Z27, Z11
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R12V1loop
 
@@ -2419,14 +2465,16 @@ sgemmAVX512R12V1nobeta:
 	VZEROUPPER
 	RET
 
-// func sgemmAVX512R12V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64)
-TEXT ·sgemmAVX512R12V2(SB), NOSPLIT, $0-56
+// func sgemmAVX512R12V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+TEXT ·sgemmAVX512R12V2(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
+	MOVQ ldb+56(FP), R9
+	SHLQ $2, R9
 	MOVQ mask+48(FP), AX
 	KMOVW AX, K1
 	SHRQ $16, AX
@@ -2456,8 +2504,8 @@ TEXT ·sgemmAVX512R12V2(SB), NOSPLIT, $0-56
 	VPXORQ Z22, Z22, Z22
 	VPXORQ Z23, Z23, Z23
 sgemmAVX512R12V2loop:
-	VMOVUPS 0(DI), Z24
-	VMOVUPS 64(DI), Z25
+	VMOVUPS.Z 0(DI), K1, Z24
+	VMOVUPS.Z 64(DI), K2, Z25
 	VBROADCASTSS 0(SI), Z26
 	VFMADD231PS Z24, Z26, Z0
 	VFMADD231PS Z25, Z26, Z1
@@ -2495,7 +2543,7 @@ sgemmAVX512R12V2loop:
 	VFMADD231PS Z24, Z27, Z22
 	VFMADD231PS Z25, Z27, Z23
 	ADDQ $48, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ sgemmAVX512R12V2loop
 
@@ -2632,23 +2680,25 @@ sgemmAVX512R12V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R1V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R1V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R1V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R1V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
 dgemmAVX512R1V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R1V1loop
 
@@ -2671,14 +2721,16 @@ dgemmAVX512R1V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R1V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R1V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R1V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R1V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -2686,13 +2738,13 @@ TEXT ·dgemmAVX512R1V2(SB), NOSPLIT, $0-64
 	VPXORQ Z0, Z0, Z0
 	VPXORQ Z1, Z1, Z1
 dgemmAVX512R1V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R1V2loop
 
@@ -2719,26 +2771,28 @@ dgemmAVX512R1V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R2V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R2V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R2V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R2V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
 	VPXORQ Z1, Z1, Z1
 dgemmAVX512R2V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
 	VFMADD231PD Z24, Z27, Z1
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R2V1loop
 
@@ -2767,14 +2821,16 @@ dgemmAVX512R2V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R2V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R2V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R2V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R2V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -2784,8 +2840,8 @@ TEXT ·dgemmAVX512R2V2(SB), NOSPLIT, $0-64
 	VPXORQ Z2, Z2, Z2
 	VPXORQ Z3, Z3, Z3
 dgemmAVX512R2V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -2793,7 +2849,7 @@ dgemmAVX512R2V2loop:
 	VFMADD231PD Z24, Z27, Z2
 	VFMADD231PD Z25, Z27, Z3
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R2V2loop
 
@@ -2830,21 +2886,23 @@ dgemmAVX512R2V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R3V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R3V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R3V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R3V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
 	VPXORQ Z1, Z1, Z1
 	VPXORQ Z2, Z2, Z2
 dgemmAVX512R3V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
@@ -2852,7 +2910,7 @@ dgemmAVX512R3V1loop:
 	VBROADCASTSD 16(SI), Z26
 	VFMADD231PD Z24, Z26, Z2
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R3V1loop
 
@@ -2887,14 +2945,16 @@ dgemmAVX512R3V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R3V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R3V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R3V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R3V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -2906,8 +2966,8 @@ TEXT ·dgemmAVX512R3V2(SB), NOSPLIT, $0-64
 	VPXORQ Z4, Z4, Z4
 	VPXORQ Z5, Z5, Z5
 dgemmAVX512R3V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -2918,7 +2978,7 @@ dgemmAVX512R3V2loop:
 	VFMADD231PD Z24, Z26, Z4
 	VFMADD231PD Z25, Z26, Z5
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R3V2loop
 
@@ -2965,14 +3025,16 @@ dgemmAVX512R3V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R4V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R4V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R4V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R4V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -2980,7 +3042,7 @@ TEXT ·dgemmAVX512R4V1(SB), NOSPLIT, $0-64
 	VPXORQ Z2, Z2, Z2
 	VPXORQ Z3, Z3, Z3
 dgemmAVX512R4V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
@@ -2990,7 +3052,7 @@ dgemmAVX512R4V1loop:
 	VBROADCASTSD 24(SI), Z27
 	VFMADD231PD Z24, Z27, Z3
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R4V1loop
 
@@ -3031,14 +3093,16 @@ dgemmAVX512R4V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R4V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R4V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R4V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R4V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -3052,8 +3116,8 @@ TEXT ·dgemmAVX512R4V2(SB), NOSPLIT, $0-64
 	VPXORQ Z6, Z6, Z6
 	VPXORQ Z7, Z7, Z7
 dgemmAVX512R4V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -3067,7 +3131,7 @@ dgemmAVX512R4V2loop:
 	VFMADD231PD Z24, Z27, Z6
 	VFMADD231PD Z25, Z27, Z7
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R4V2loop
 
@@ -3124,14 +3188,16 @@ dgemmAVX512R4V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R5V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R5V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R5V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R5V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -3140,7 +3206,7 @@ TEXT ·dgemmAVX512R5V1(SB), NOSPLIT, $0-64
 	VPXORQ Z3, Z3, Z3
 	VPXORQ Z4, Z4, Z4
 dgemmAVX512R5V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
@@ -3152,7 +3218,7 @@ dgemmAVX512R5V1loop:
 	VBROADCASTSD 32(SI), Z26
 	VFMADD231PD Z24, Z26, Z4
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R5V1loop
 
@@ -3199,14 +3265,16 @@ dgemmAVX512R5V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R5V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R5V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R5V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R5V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -3222,8 +3290,8 @@ TEXT ·dgemmAVX512R5V2(SB), NOSPLIT, $0-64
 	VPXORQ Z8, Z8, Z8
 	VPXORQ Z9, Z9, Z9
 dgemmAVX512R5V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -3240,7 +3308,7 @@ dgemmAVX512R5V2loop:
 	VFMADD231PD Z24, Z26, Z8
 	VFMADD231PD Z25, Z26, Z9
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R5V2loop
 
@@ -3307,14 +3375,16 @@ dgemmAVX512R5V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R6V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R6V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R6V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R6V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -3324,7 +3394,7 @@ TEXT ·dgemmAVX512R6V1(SB), NOSPLIT, $0-64
 	VPXORQ Z4, Z4, Z4
 	VPXORQ Z5, Z5, Z5
 dgemmAVX512R6V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
@@ -3338,7 +3408,7 @@ dgemmAVX512R6V1loop:
 	VBROADCASTSD 40(SI), Z27
 	VFMADD231PD Z24, Z27, Z5
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R6V1loop
 
@@ -3391,14 +3461,16 @@ dgemmAVX512R6V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R6V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R6V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R6V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R6V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -3416,8 +3488,8 @@ TEXT ·dgemmAVX512R6V2(SB), NOSPLIT, $0-64
 	VPXORQ Z10, Z10, Z10
 	VPXORQ Z11, Z11, Z11
 dgemmAVX512R6V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -3437,7 +3509,7 @@ dgemmAVX512R6V2loop:
 	VFMADD231PD Z24, Z27, Z10
 	VFMADD231PD Z25, Z27, Z11
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R6V2loop
 
@@ -3514,14 +3586,16 @@ dgemmAVX512R6V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R7V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R7V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R7V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R7V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -3532,7 +3606,7 @@ TEXT ·dgemmAVX512R7V1(SB), NOSPLIT, $0-64
 	VPXORQ Z5, Z5, Z5
 	VPXORQ Z6, Z6, Z6
 dgemmAVX512R7V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
@@ -3548,7 +3622,7 @@ dgemmAVX512R7V1loop:
 	VBROADCASTSD 48(SI), Z26
 	VFMADD231PD Z24, Z26, Z6
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R7V1loop
 
@@ -3607,14 +3681,16 @@ dgemmAVX512R7V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R7V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R7V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R7V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R7V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -3634,8 +3710,8 @@ TEXT ·dgemmAVX512R7V2(SB), NOSPLIT, $0-64
 	VPXORQ Z12, Z12, Z12
 	VPXORQ Z13, Z13, Z13
 dgemmAVX512R7V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -3658,7 +3734,7 @@ dgemmAVX512R7V2loop:
 	VFMADD231PD Z24, Z26, Z12
 	VFMADD231PD Z25, Z26, Z13
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R7V2loop
 
@@ -3745,14 +3821,16 @@ dgemmAVX512R7V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R8V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R8V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R8V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R8V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -3764,7 +3842,7 @@ TEXT ·dgemmAVX512R8V1(SB), NOSPLIT, $0-64
 	VPXORQ Z6, Z6, Z6
 	VPXORQ Z7, Z7, Z7
 dgemmAVX512R8V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
@@ -3782,7 +3860,7 @@ dgemmAVX512R8V1loop:
 	VBROADCASTSD 56(SI), Z27
 	VFMADD231PD Z24, Z27, Z7
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R8V1loop
 
@@ -3847,14 +3925,16 @@ dgemmAVX512R8V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R8V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R8V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R8V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R8V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -3876,8 +3956,8 @@ TEXT ·dgemmAVX512R8V2(SB), NOSPLIT, $0-64
 	VPXORQ Z14, Z14, Z14
 	VPXORQ Z15, Z15, Z15
 dgemmAVX512R8V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -3903,7 +3983,7 @@ dgemmAVX512R8V2loop:
 	VFMADD231PD Z24, Z27, Z14
 	VFMADD231PD Z25, Z27, Z15
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R8V2loop
 
@@ -4000,14 +4080,16 @@ dgemmAVX512R8V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R9V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R9V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R9V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R9V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -4020,7 +4102,7 @@ TEXT ·dgemmAVX512R9V1(SB), NOSPLIT, $0-64
 	VPXORQ Z7, Z7, Z7
 	VPXORQ Z8, Z8, Z8
 dgemmAVX512R9V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
@@ -4040,7 +4122,7 @@ dgemmAVX512R9V1loop:
 	VBROADCASTSD 64(SI), Z26
 	VFMADD231PD Z24, Z26, Z8
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R9V1loop
 
@@ -4111,14 +4193,16 @@ dgemmAVX512R9V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R9V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R9V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R9V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R9V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -4142,8 +4226,8 @@ TEXT ·dgemmAVX512R9V2(SB), NOSPLIT, $0-64
 	VPXORQ Z16, Z16, Z16
 	VPXORQ Z17, Z17, Z17
 dgemmAVX512R9V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -4172,7 +4256,7 @@ dgemmAVX512R9V2loop:
 	VFMADD231PD Z24, Z26, Z16
 	VFMADD231PD Z25, Z26, Z17
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R9V2loop
 
@@ -4279,14 +4363,16 @@ dgemmAVX512R9V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R10V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R10V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R10V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R10V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -4300,7 +4386,7 @@ TEXT ·dgemmAVX512R10V1(SB), NOSPLIT, $0-64
 	VPXORQ Z8, Z8, Z8
 	VPXORQ Z9, Z9, Z9
 dgemmAVX512R10V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
@@ -4322,7 +4408,7 @@ dgemmAVX512R10V1loop:
 	VBROADCASTSD 72(SI), Z27
 	VFMADD231PD Z24, Z27, Z9
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R10V1loop
 
@@ -4399,14 +4485,16 @@ dgemmAVX512R10V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R10V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R10V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R10V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R10V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -4432,8 +4520,8 @@ TEXT ·dgemmAVX512R10V2(SB), NOSPLIT, $0-64
 	VPXORQ Z18, Z18, Z18
 	VPXORQ Z19, Z19, Z19
 dgemmAVX512R10V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -4465,7 +4553,7 @@ dgemmAVX512R10V2loop:
 	VFMADD231PD Z24, Z27, Z18
 	VFMADD231PD Z25, Z27, Z19
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R10V2loop
 
@@ -4582,14 +4670,16 @@ dgemmAVX512R10V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R11V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R11V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R11V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R11V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -4604,7 +4694,7 @@ TEXT ·dgemmAVX512R11V1(SB), NOSPLIT, $0-64
 	VPXORQ Z9, Z9, Z9
 	VPXORQ Z10, Z10, Z10
 dgemmAVX512R11V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
@@ -4628,7 +4718,7 @@ dgemmAVX512R11V1loop:
 	VBROADCASTSD 80(SI), Z26
 	VFMADD231PD Z24, Z26, Z10
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R11V1loop
 
@@ -4711,14 +4801,16 @@ dgemmAVX512R11V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R11V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R11V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R11V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R11V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -4746,8 +4838,8 @@ TEXT ·dgemmAVX512R11V2(SB), NOSPLIT, $0-64
 	VPXORQ Z20, Z20, Z20
 	VPXORQ Z21, Z21, Z21
 dgemmAVX512R11V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -4782,7 +4874,7 @@ dgemmAVX512R11V2loop:
 	VFMADD231PD Z24, Z26, Z20
 	VFMADD231PD Z25, Z26, Z21
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R11V2loop
 
@@ -4909,14 +5001,16 @@ dgemmAVX512R11V2nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R12V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R12V1(SB), NOSPLIT, $0-64
+// func dgemmAVX512R12V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R12V1(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	VPXORQ Z0, Z0, Z0
@@ -4932,7 +5026,7 @@ TEXT ·dgemmAVX512R12V1(SB), NOSPLIT, $0-64
 	VPXORQ Z10, Z10, Z10
 	VPXORQ Z11, Z11, Z11
 dgemmAVX512R12V1loop:
-	VMOVUPD 0(DI), Z24
+	VMOVUPD.Z 0(DI), K1, Z24
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VBROADCASTSD 8(SI), Z27
@@ -4958,7 +5052,7 @@ dgemmAVX512R12V1loop:
 	VBROADCASTSD 88(SI), Z27
 	VFMADD231PD Z24, Z27, Z11
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R12V1loop
 
@@ -5047,14 +5141,16 @@ dgemmAVX512R12V1nobeta:
 	VZEROUPPER
 	RET
 
-// func dgemmAVX512R12V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64)
-TEXT ·dgemmAVX512R12V2(SB), NOSPLIT, $0-64
+// func dgemmAVX512R12V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+TEXT ·dgemmAVX512R12V2(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $3, R8
+	MOVQ ldb+64(FP), R9
+	SHLQ $3, R9
 	MOVQ mask+56(FP), AX
 	KMOVW AX, K1
 	SHRQ $8, AX
@@ -5084,8 +5180,8 @@ TEXT ·dgemmAVX512R12V2(SB), NOSPLIT, $0-64
 	VPXORQ Z22, Z22, Z22
 	VPXORQ Z23, Z23, Z23
 dgemmAVX512R12V2loop:
-	VMOVUPD 0(DI), Z24
-	VMOVUPD 64(DI), Z25
+	VMOVUPD.Z 0(DI), K1, Z24
+	VMOVUPD.Z 64(DI), K2, Z25
 	VBROADCASTSD 0(SI), Z26
 	VFMADD231PD Z24, Z26, Z0
 	VFMADD231PD Z25, Z26, Z1
@@ -5123,7 +5219,7 @@ dgemmAVX512R12V2loop:
 	VFMADD231PD Z24, Z27, Z22
 	VFMADD231PD Z25, Z27, Z23
 	ADDQ $96, SI
-	ADDQ $128, DI
+	ADDQ R9, DI
 	DECQ CX
 	JNZ dgemmAVX512R12V2loop
 

@@ -31,12 +31,13 @@ type typ struct {
 	kmov    string // KMOVW (AVX512F; 8-lane ops use the low 8 bits)
 	betaOff int    // frame offset of beta
 	maskOff int    // frame offset of mask
+	ldbOff  int    // frame offset of ldb
 	args    int    // argument frame size
 }
 
 var types = []typ{
-	{"float32", "s", 4, 16, "PS", "VBROADCASTSS", "VMOVUPS", "KMOVW", 44, 48, 56},
-	{"float64", "d", 8, 8, "PD", "VBROADCASTSD", "VMOVUPD", "KMOVW", 48, 56, 64},
+	{"float32", "s", 4, 16, "PS", "VBROADCASTSS", "VMOVUPS", "KMOVW", 44, 48, 56, 64},
+	{"float64", "d", 8, 8, "PD", "VBROADCASTSD", "VMOVUPD", "KMOVW", 48, 56, 64, 72},
 }
 
 const mr = 12 // rows per packed strip of A
@@ -76,13 +77,13 @@ func main() {
 			for vecs := 1; vecs <= 2; vecs++ {
 				q("")
 				q("//go:noescape")
-				q("func %s(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64)", name(t, rows, vecs), t.goName, t.goName)
+				q("func %s(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64, ldb int)", name(t, rows, vecs), t.goName, t.goName)
 			}
 		}
 		q("")
 		q("// avx512%s[rows-1][vectors-1] is the kernel for a tile of that many rows", t.prefix)
 		q("// and vectors of columns.")
-		q("var avx512%s = [%d][2]func(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64){", t.prefix, mr, t.goName, t.goName)
+		q("var avx512%s = [%d][2]func(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64, ldb int){", t.prefix, mr, t.goName, t.goName)
 		for rows := 1; rows <= mr; rows++ {
 			q("{%s, %s},", name(t, rows, 1), name(t, rows, 2))
 		}
@@ -99,16 +100,18 @@ func main() {
 
 // kernel writes one TEXT block: C[0:rows][masked columns] = alpha*(A·B) +
 // beta*C over kc steps of packed A (mr values per step, of which the first
-// rows are used) and packed B (2 vectors per step, of which the first vecs
-// are used). Registers: Z0.. accumulators (row r, vector v in Z(r*vecs+v)),
-// Z24-Z25 the row of B, Z26-Z27 broadcasts of A, then alpha and beta; K1 and
-// K2 the column masks of the two vectors; SI packed A, DI packed B, DX the
-// current row of C, R8 ldc in bytes, CX the steps left.
+// rows are used) and B (one row of up to 2 vectors per step, ldb elements
+// apart: packed B, or B itself when it needs no packing; only the masked
+// columns are loaded, the others read as 0). Registers: Z0.. accumulators
+// (row r, vector v in Z(r*vecs+v)), Z24-Z25 the row of B, Z26-Z27
+// broadcasts of A, then alpha and beta; K1 and K2 the column masks of the
+// two vectors; SI packed A, DI B, R9 ldb in bytes, DX the current row of C,
+// R8 ldc in bytes, CX the steps left.
 func kernel(p func(string, ...any), t typ, rows, vecs int) {
 	acc := func(r, v int) string { return fmt.Sprintf("Z%d", r*vecs+v) }
 	vb := 64 // bytes per vector
 	p("")
-	p("// func %s(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64)", name(t, rows, vecs), t.goName, t.goName)
+	p("// func %s(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64, ldb int)", name(t, rows, vecs), t.goName, t.goName)
 	p("TEXT ·%s(SB), NOSPLIT, $0-%d", name(t, rows, vecs), t.args)
 	p("\tMOVQ kc+0(FP), CX")
 	p("\tMOVQ a+8(FP), SI")
@@ -116,6 +119,8 @@ func kernel(p func(string, ...any), t typ, rows, vecs int) {
 	p("\tMOVQ c+24(FP), DX")
 	p("\tMOVQ ldc+32(FP), R8")
 	p("\tSHLQ $%d, R8", map[int]int{4: 2, 8: 3}[t.size])
+	p("\tMOVQ ldb+%d(FP), R9", t.ldbOff)
+	p("\tSHLQ $%d, R9", map[int]int{4: 2, 8: 3}[t.size])
 	p("\tMOVQ mask+%d(FP), AX", t.maskOff)
 	p("\t%s AX, K1", t.kmov)
 	if vecs == 2 {
@@ -130,7 +135,7 @@ func kernel(p func(string, ...any), t typ, rows, vecs int) {
 	loop := name(t, rows, vecs) + "loop"
 	p("%s:", loop)
 	for v := 0; v < vecs; v++ {
-		p("\t%s %d(DI), Z%d", t.mov, v*vb, 24+v)
+		p("\t%s.Z %d(DI), K%d, Z%d", t.mov, v*vb, v+1, 24+v)
 	}
 	for r := 0; r < rows; r++ {
 		tr := fmt.Sprintf("Z%d", 26+r%2)
@@ -140,7 +145,7 @@ func kernel(p func(string, ...any), t typ, rows, vecs int) {
 		}
 	}
 	p("\tADDQ $%d, SI", mr*t.size)
-	p("\tADDQ $%d, DI", 2*vb)
+	p("\tADDQ R9, DI")
 	p("\tDECQ CX")
 	p("\tJNZ %s", loop)
 	p("")
