@@ -154,7 +154,13 @@ func serial[T float](kn *kernel[T], tA, tB bool, m, n, k int, alpha T, a []T, ld
 	if direct {
 		nb = 0
 	}
-	buf := kn.get(mc*kc, nb)
+	// The same for op(A) = A: its rows are read in place.
+	directA := kn.tile != nil && !tA && gcd(lda*int(unsafe.Sizeof(zero)), 4096) <= 64
+	na := mc * kc
+	if directA {
+		na = 0
+	}
+	buf := kn.get(na, nb)
 	defer kn.pool.Put(buf)
 	for jc := 0; jc < n; jc += nc {
 		ncb := min(nc, n-jc)
@@ -172,8 +178,13 @@ func serial[T float](kn *kernel[T], tA, tB bool, m, n, k int, alpha T, a []T, ld
 			}
 			for ic := 0; ic < m; ic += mc {
 				mcb := min(mc, m-ic)
-				packA(buf.a, a, lda, tA, ic, pc, mcb, kcb, mr)
-				macro(kn, mcb, ncb, kcb, buf, bp, bStride, alpha, betaBlock, c[ic*ldc+jc:], ldc)
+				ap, aStride := buf.a, 0
+				if directA {
+					ap, aStride = a[ic*lda+pc:], lda
+				} else {
+					packA(buf.a, a, lda, tA, ic, pc, mcb, kcb, mr)
+				}
+				macro(kn, mcb, ncb, kcb, buf, ap, aStride, bp, bStride, alpha, betaBlock, c[ic*ldc+jc:], ldc)
 			}
 		}
 	}
@@ -184,21 +195,31 @@ func serial[T float](kn *kernel[T], tA, tB bool, m, n, k int, alpha T, a []T, ld
 // while the mr-row strips of packed A stream past it from L2. Edge tiles go
 // through buf.tmp so the kernel always writes a full tile.
 //
+// ap is packed A (aStride 0) or A itself, its rows aStride elements apart;
 // bp is packed B (bStride 0) or B itself, its rows bStride elements apart.
-func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], bp []T, bStride int, alpha, beta T, c []T, ldc int) {
+func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], ap []T, aStride int, bp []T, bStride int, alpha, beta T, c []T, ldc int) {
 	mr, nr := kn.mr, kn.nr
 	tmp := buf.tmp
 	for jr := 0; jr < ncb; jr += nr {
 		cols := min(nr, ncb-jr)
-		pb, ldb := &bp[jr*kcb], nr // packed: strips of kcb×nr
+		var pb *T
+		ldb := nr
 		if bStride > 0 {
 			pb, ldb = &bp[jr], bStride // B itself
+		} else {
+			pb = &bp[jr*kcb] // packed: strips of kcb×nr
 		}
 		for ir := 0; ir < mcb; ir += mr {
 			rows := min(mr, mcb-ir)
-			pa := &buf.a[ir*kcb]
+			var pa *T
+			ars, aps := 1, mr
+			if aStride > 0 {
+				pa, ars, aps = &ap[ir*aStride], aStride, 1 // A itself
+			} else {
+				pa = &ap[ir*kcb] // packed: strips of mr×kcb
+			}
 			if kn.tile != nil {
-				kn.tile(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta, rows, cols, ldb)
+				kn.tile(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta, rows, cols, ldb, ars, aps)
 				continue
 			}
 			if rows == mr && cols == nr {

@@ -31,8 +31,10 @@ type kernel[T float] struct {
 	// place, reading only those columns of B, whose rows are ldb elements
 	// apart (nr for packed B); otherwise the same contract as micro. Edge
 	// tiles then skip the detour through a scratch tile, and op(B) = B can
-	// be read where it is, unpacked.
-	tile func(kc int, a, b, c *T, ldc int, alpha, beta T, rows, cols, ldb int)
+	// be read where it is, unpacked. Likewise element (r, p) of A is at
+	// r*ars + p*aps: ars = 1 and aps = mr for packed A, ars = lda and aps = 1
+	// for op(A) = A read in place.
+	tile func(kc int, a, b, c *T, ldc int, alpha, beta T, rows, cols, ldb, ars, aps int)
 	pool sync.Pool // *buffers[T], reused across calls
 }
 

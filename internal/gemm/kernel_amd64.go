@@ -53,26 +53,26 @@ func kernelsForTest() ([]*kernel[float32], []*kernel[float64]) {
 // tile height 1..12 and one or two vectors of columns, and mask their loads
 // and stores of C to the tile's columns, so edge tiles are written in place.
 
-func sgemmTileAVX512(kc int, a, b, c *float32, ldc int, alpha, beta float32, rows, cols, ldb int) {
+func sgemmTileAVX512(kc int, a, b, c *float32, ldc int, alpha, beta float32, rows, cols, ldb, ars, aps int) {
 	v := 0
 	if cols > 16 {
 		v = 1
 	}
-	avx512s[rows-1][v](kc, a, b, c, ldc, alpha, beta, 1<<cols-1, ldb)
+	avx512s[rows-1][v](kc, a, b, c, ldc, alpha, beta, 1<<cols-1, ldb, ars, aps)
 }
 
-func dgemmTileAVX512(kc int, a, b, c *float64, ldc int, alpha, beta float64, rows, cols, ldb int) {
+func dgemmTileAVX512(kc int, a, b, c *float64, ldc int, alpha, beta float64, rows, cols, ldb, ars, aps int) {
 	v := 0
 	if cols > 8 {
 		v = 1
 	}
-	avx512d[rows-1][v](kc, a, b, c, ldc, alpha, beta, 1<<cols-1, ldb)
+	avx512d[rows-1][v](kc, a, b, c, ldc, alpha, beta, 1<<cols-1, ldb, ars, aps)
 }
 
 func sgemm12x32AVX512(kc int, a, b, c *float32, ldc int, alpha, beta float32) {
-	sgemmAVX512R12V2(kc, a, b, c, ldc, alpha, beta, 1<<32-1, 32)
+	sgemmAVX512R12V2(kc, a, b, c, ldc, alpha, beta, 1<<32-1, 32, 1, 12)
 }
 
 func dgemm12x16AVX512(kc int, a, b, c *float64, ldc int, alpha, beta float64) {
-	dgemmAVX512R12V2(kc, a, b, c, ldc, alpha, beta, 1<<16-1, 16)
+	dgemmAVX512R12V2(kc, a, b, c, ldc, alpha, beta, 1<<16-1, 16, 1, 12)
 }

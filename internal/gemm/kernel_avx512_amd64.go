@@ -5,80 +5,80 @@
 package gemm
 
 //go:noescape
-func sgemmAVX512R1V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R1V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R1V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R1V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R2V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R2V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R2V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R2V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R3V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R3V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R3V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R3V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R4V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R4V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R4V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R4V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R5V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R5V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R5V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R5V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R6V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R6V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R6V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R6V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R7V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R7V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R7V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R7V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R8V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R8V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R8V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R8V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R9V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R9V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R9V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R9V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R10V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R10V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R10V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R10V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R11V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R11V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R11V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R11V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R12V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R12V1(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func sgemmAVX512R12V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int)
+func sgemmAVX512R12V2(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int)
 
 // avx512s[rows-1][vectors-1] is the kernel for a tile of that many rows
 // and vectors of columns.
-var avx512s = [12][2]func(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb int){
+var avx512s = [12][2]func(kc int, a, b, c *float32, ldc int, alpha, beta float32, mask uint64, ldb, ars, aps int){
 	{sgemmAVX512R1V1, sgemmAVX512R1V2},
 	{sgemmAVX512R2V1, sgemmAVX512R2V2},
 	{sgemmAVX512R3V1, sgemmAVX512R3V2},
@@ -94,80 +94,80 @@ var avx512s = [12][2]func(kc int, a, b, c *float32, ldc int, alpha, beta float32
 }
 
 //go:noescape
-func dgemmAVX512R1V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R1V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R1V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R1V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R2V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R2V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R2V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R2V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R3V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R3V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R3V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R3V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R4V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R4V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R4V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R4V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R5V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R5V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R5V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R5V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R6V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R6V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R6V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R6V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R7V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R7V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R7V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R7V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R8V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R8V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R8V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R8V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R9V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R9V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R9V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R9V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R10V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R10V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R10V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R10V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R11V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R11V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R11V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R11V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R12V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R12V1(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 //go:noescape
-func dgemmAVX512R12V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int)
+func dgemmAVX512R12V2(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int)
 
 // avx512d[rows-1][vectors-1] is the kernel for a tile of that many rows
 // and vectors of columns.
-var avx512d = [12][2]func(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb int){
+var avx512d = [12][2]func(kc int, a, b, c *float64, ldc int, alpha, beta float64, mask uint64, ldb, ars, aps int){
 	{dgemmAVX512R1V1, dgemmAVX512R1V2},
 	{dgemmAVX512R2V1, dgemmAVX512R2V2},
 	{dgemmAVX512R3V1, dgemmAVX512R3V2},

@@ -31,13 +31,13 @@ type typ struct {
 	kmov    string // KMOVW (AVX512F; 8-lane ops use the low 8 bits)
 	betaOff int    // frame offset of beta
 	maskOff int    // frame offset of mask
-	ldbOff  int    // frame offset of ldb
+	ldbOff  int    // frame offset of ldb; ars and aps follow
 	args    int    // argument frame size
 }
 
 var types = []typ{
-	{"float32", "s", 4, 16, "PS", "VBROADCASTSS", "VMOVUPS", "KMOVW", 44, 48, 56, 64},
-	{"float64", "d", 8, 8, "PD", "VBROADCASTSD", "VMOVUPD", "KMOVW", 48, 56, 64, 72},
+	{"float32", "s", 4, 16, "PS", "VBROADCASTSS", "VMOVUPS", "KMOVW", 44, 48, 56, 80},
+	{"float64", "d", 8, 8, "PD", "VBROADCASTSD", "VMOVUPD", "KMOVW", 48, 56, 64, 88},
 }
 
 const mr = 12 // rows per packed strip of A
@@ -77,13 +77,13 @@ func main() {
 			for vecs := 1; vecs <= 2; vecs++ {
 				q("")
 				q("//go:noescape")
-				q("func %s(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64, ldb int)", name(t, rows, vecs), t.goName, t.goName)
+				q("func %s(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64, ldb, ars, aps int)", name(t, rows, vecs), t.goName, t.goName)
 			}
 		}
 		q("")
 		q("// avx512%s[rows-1][vectors-1] is the kernel for a tile of that many rows", t.prefix)
 		q("// and vectors of columns.")
-		q("var avx512%s = [%d][2]func(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64, ldb int){", t.prefix, mr, t.goName, t.goName)
+		q("var avx512%s = [%d][2]func(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64, ldb, ars, aps int){", t.prefix, mr, t.goName, t.goName)
 		for rows := 1; rows <= mr; rows++ {
 			q("{%s, %s},", name(t, rows, 1), name(t, rows, 2))
 		}
@@ -99,19 +99,21 @@ func main() {
 }
 
 // kernel writes one TEXT block: C[0:rows][masked columns] = alpha*(A·B) +
-// beta*C over kc steps of packed A (mr values per step, of which the first
-// rows are used) and B (one row of up to 2 vectors per step, ldb elements
+// beta*C over kc steps of A (element (r, p) at r*ars + p*aps: packed A has
+// ars = 1, aps = mr; A itself ars = lda, aps = 1) and B (one row of up to 2 vectors per step, ldb elements
 // apart: packed B, or B itself when it needs no packing; only the masked
 // columns are loaded, the others read as 0). Registers: Z0.. accumulators
 // (row r, vector v in Z(r*vecs+v)), Z24-Z25 the row of B, Z26-Z27
 // broadcasts of A, then alpha and beta; K1 and K2 the column masks of the
-// two vectors; SI packed A, DI B, R9 ldb in bytes, DX the current row of C,
-// R8 ldc in bytes, CX the steps left.
+// two vectors; DI B, R9 ldb in bytes, DX the current row of C, R8 ldc in
+// bytes, CX the steps left. A's rows 0-4, 5-9 and 10-11 are addressed from
+// SI, R11 and R12 plus 0, 1, 2, 3 or 4 times ars (R10 = ars in bytes, R13 =
+// 3*ars); BX is aps in bytes, added to all three each step.
 func kernel(p func(string, ...any), t typ, rows, vecs int) {
 	acc := func(r, v int) string { return fmt.Sprintf("Z%d", r*vecs+v) }
 	vb := 64 // bytes per vector
 	p("")
-	p("// func %s(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64, ldb int)", name(t, rows, vecs), t.goName, t.goName)
+	p("// func %s(kc int, a, b, c *%s, ldc int, alpha, beta %s, mask uint64, ldb, ars, aps int)", name(t, rows, vecs), t.goName, t.goName)
 	p("TEXT ·%s(SB), NOSPLIT, $0-%d", name(t, rows, vecs), t.args)
 	p("\tMOVQ kc+0(FP), CX")
 	p("\tMOVQ a+8(FP), SI")
@@ -119,6 +121,21 @@ func kernel(p func(string, ...any), t typ, rows, vecs int) {
 	p("\tMOVQ c+24(FP), DX")
 	p("\tMOVQ ldc+32(FP), R8")
 	p("\tSHLQ $%d, R8", map[int]int{4: 2, 8: 3}[t.size])
+	shift := map[int]int{4: 2, 8: 3}[t.size]
+	p("\tMOVQ ars+%d(FP), R10", t.ldbOff+8)
+	p("\tSHLQ $%d, R10", shift)
+	p("\tLEAQ (R10)(R10*2), R13")
+	p("\tMOVQ aps+%d(FP), BX", t.ldbOff+16)
+	p("\tSHLQ $%d, BX", shift)
+	bases := []string{"SI", "R11", "R12"}
+	for g := 1; g*5 < rows; g++ {
+		p("\tLEAQ (%s)(R10*4), %s", bases[g-1], bases[g])
+		p("\tADDQ R10, %s", bases[g])
+	}
+	aAddr := func(r int) string {
+		b := bases[r/5]
+		return [...]string{"(" + b + ")", "(" + b + ")(R10*1)", "(" + b + ")(R10*2)", "(" + b + ")(R13*1)", "(" + b + ")(R10*4)"}[r%5]
+	}
 	p("\tMOVQ ldb+%d(FP), R9", t.ldbOff)
 	p("\tSHLQ $%d, R9", map[int]int{4: 2, 8: 3}[t.size])
 	p("\tMOVQ mask+%d(FP), AX", t.maskOff)
@@ -139,12 +156,14 @@ func kernel(p func(string, ...any), t typ, rows, vecs int) {
 	}
 	for r := 0; r < rows; r++ {
 		tr := fmt.Sprintf("Z%d", 26+r%2)
-		p("\t%s %d(SI), %s", t.bcst, r*t.size, tr)
+		p("\t%s %s, %s", t.bcst, aAddr(r), tr)
 		for v := 0; v < vecs; v++ {
 			p("\tVFMADD231%s Z%d, %s, %s", t.ps, 24+v, tr, acc(r, v))
 		}
 	}
-	p("\tADDQ $%d, SI", mr*t.size)
+	for g := 0; g*5 < rows; g++ {
+		p("\tADDQ BX, %s", bases[g])
+	}
 	p("\tADDQ R9, DI")
 	p("\tDECQ CX")
 	p("\tJNZ %s", loop)
