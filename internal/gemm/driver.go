@@ -154,8 +154,9 @@ func serial[T float](kn *kernel[T], tA, tB bool, m, n, k int, alpha T, a []T, ld
 	if direct {
 		nb = 0
 	}
-	// The same for op(A) = A: its rows are read in place.
-	directA := kn.tile != nil && !tA && gcd(lda*int(unsafe.Sizeof(zero)), 4096) <= 64
+	// The same for A, transposed or not: the kernel takes element (r, p) of
+	// op(A) from r*ars + p*aps, which covers both layouts.
+	directA := kn.tile != nil && gcd(lda*int(unsafe.Sizeof(zero)), 4096) <= 64
 	na := mc * kc
 	if directA {
 		na = 0
@@ -178,13 +179,16 @@ func serial[T float](kn *kernel[T], tA, tB bool, m, n, k int, alpha T, a []T, ld
 			}
 			for ic := 0; ic < m; ic += mc {
 				mcb := min(mc, m-ic)
-				ap, aStride := buf.a, 0
-				if directA {
-					ap, aStride = a[ic*lda+pc:], lda
-				} else {
+				ap, ars, aps := buf.a, 0, 0
+				switch {
+				case directA && tA: // op(A)[i][p] = a[p*lda+i]
+					ap, ars, aps = a[pc*lda+ic:], 1, lda
+				case directA:
+					ap, ars, aps = a[ic*lda+pc:], lda, 1
+				default:
 					packA(buf.a, a, lda, tA, ic, pc, mcb, kcb, mr)
 				}
-				macro(kn, mcb, ncb, kcb, buf, ap, aStride, bp, bStride, alpha, betaBlock, c[ic*ldc+jc:], ldc)
+				macro(kn, mcb, ncb, kcb, buf, ap, ars, aps, bp, bStride, alpha, betaBlock, c[ic*ldc+jc:], ldc)
 			}
 		}
 	}
@@ -195,9 +199,10 @@ func serial[T float](kn *kernel[T], tA, tB bool, m, n, k int, alpha T, a []T, ld
 // while the mr-row strips of packed A stream past it from L2. Edge tiles go
 // through buf.tmp so the kernel always writes a full tile.
 //
-// ap is packed A (aStride 0) or A itself, its rows aStride elements apart;
-// bp is packed B (bStride 0) or B itself, its rows bStride elements apart.
-func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], ap []T, aStride int, bp []T, bStride int, alpha, beta T, c []T, ldc int) {
+// ap is packed A (ars 0) or A itself, element (r, p) of op(A) at r*ars +
+// p*aps; bp is packed B (bStride 0) or B itself, its rows bStride elements
+// apart.
+func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], ap []T, ars, aps int, bp []T, bStride int, alpha, beta T, c []T, ldc int) {
 	mr, nr := kn.mr, kn.nr
 	tmp := buf.tmp
 	for jr := 0; jr < ncb; jr += nr {
@@ -212,14 +217,14 @@ func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], ap []T, a
 		for ir := 0; ir < mcb; ir += mr {
 			rows := min(mr, mcb-ir)
 			var pa *T
-			ars, aps := 1, mr
-			if aStride > 0 {
-				pa, ars, aps = &ap[ir*aStride], aStride, 1 // A itself
+			rs, ps := 1, mr
+			if ars > 0 {
+				pa, rs, ps = &ap[ir*ars], ars, aps // A itself
 			} else {
 				pa = &ap[ir*kcb] // packed: strips of mr×kcb
 			}
 			if kn.tile != nil {
-				kn.tile(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta, rows, cols, ldb, ars, aps)
+				kn.tile(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta, rows, cols, ldb, rs, ps)
 				continue
 			}
 			if rows == mr && cols == nr {
@@ -316,13 +321,28 @@ func packB[T float](dst, b []T, ldb int, tB bool, pc, jc, kcb, ncb, nr int) {
 		// op(B)[p][j] = b[j*ldb+p]: rows of B, four at a time, become
 		// columns of the strip.
 		j := 0
+		for ; j+8 <= cols; j += 8 {
+			s0 := b[(j0+j)*ldb+pc : (j0+j)*ldb+pc+kcb]
+			s1 := b[(j0+j+1)*ldb+pc:][:len(s0)]
+			s2 := b[(j0+j+2)*ldb+pc:][:len(s0)]
+			s3 := b[(j0+j+3)*ldb+pc:][:len(s0)]
+			s4 := b[(j0+j+4)*ldb+pc:][:len(s0)]
+			s5 := b[(j0+j+5)*ldb+pc:][:len(s0)]
+			s6 := b[(j0+j+6)*ldb+pc:][:len(s0)]
+			s7 := b[(j0+j+7)*ldb+pc:][:len(s0)]
+			for p := range s0 {
+				d := strip[p*nr+j:][:8:8]
+				d[0], d[1], d[2], d[3] = s0[p], s1[p], s2[p], s3[p]
+				d[4], d[5], d[6], d[7] = s4[p], s5[p], s6[p], s7[p]
+			}
+		}
 		for ; j+4 <= cols; j += 4 {
 			s0 := b[(j0+j)*ldb+pc : (j0+j)*ldb+pc+kcb]
-			s1 := b[(j0+j+1)*ldb+pc : (j0+j+1)*ldb+pc+kcb]
-			s2 := b[(j0+j+2)*ldb+pc : (j0+j+2)*ldb+pc+kcb]
-			s3 := b[(j0+j+3)*ldb+pc : (j0+j+3)*ldb+pc+kcb]
+			s1 := b[(j0+j+1)*ldb+pc:][:len(s0)]
+			s2 := b[(j0+j+2)*ldb+pc:][:len(s0)]
+			s3 := b[(j0+j+3)*ldb+pc:][:len(s0)]
 			for p := range s0 {
-				d := strip[p*nr+j : p*nr+j+4 : p*nr+j+4]
+				d := strip[p*nr+j:][:4:4]
 				d[0], d[1], d[2], d[3] = s0[p], s1[p], s2[p], s3[p]
 			}
 		}
