@@ -35,7 +35,10 @@ type kernel[T float] struct {
 	// r*ars + p*aps: ars = 1 and aps = mr for packed A, ars = lda and aps = 1
 	// for op(A) = A read in place.
 	tile func(kc int, a, b, c *T, ldc int, alpha, beta T, rows, cols, ldb, ars, aps int)
-	pool sync.Pool // *buffers[T], reused across calls
+	// pool caches packing buffers (*buffers[T]) across calls: the one
+	// thing in the package that changes after it loads, safe for
+	// concurrent use and invisible to callers.
+	pool sync.Pool
 }
 
 // portable32 and portable64 are the pure-Go kernels: a 4×4 register tile,
