@@ -185,6 +185,15 @@ var shapes = [][3]int{
 
 var scalars = [][2]float64{{1, 0}, {1, 1}, {0, 0}, {0, 1}, {0, 2}, {-1.5, 0.5}, {0.5, -2}}
 
+// threadCounts are the goroutine counts each product runs on: 3 (an uneven
+// split) only without -short.
+func threadCounts() []int {
+	if testing.Short() {
+		return []int{1, 2}
+	}
+	return []int{1, 2, 3}
+}
+
 func runAll[T float](t *testing.T, kernels []*kernel[T]) {
 	rng := rand.New(rand.NewPCG(1, 2))
 	for _, kn := range kernels {
@@ -195,7 +204,7 @@ func runAll[T float](t *testing.T, kernels []*kernel[T]) {
 						pad := (si % 3) * 3 // leading dimensions n, n+3, n+6
 						p := newProblem(rng, tA, tB, sh[0], sh[1], sh[2], pad, T(ab[0]), T(ab[1]))
 						want := p.want()
-						for _, threads := range []int{1, 2, 3} {
+						for _, threads := range threadCounts() {
 							label := fmt.Sprintf("%s %dx%dx%d tA=%v tB=%v alpha=%v beta=%v lead+%d threads=%d",
 								kn.name, sh[0], sh[1], sh[2], tA, tB, ab[0], ab[1], pad, threads)
 							p.check(t, label, p.got(kn, threads), want)
