@@ -32,6 +32,9 @@ type inferLimits struct {
 	// beforeRun, when not nil, is called before every program run with
 	// the program's key (tests count runs with it).
 	beforeRun func(programKey)
+	// lean runs the call on the model's lean plan when it has one (see
+	// leanLimits); the bounds above then do not apply.
+	lean bool
 }
 
 func defaultInferLimits() inferLimits {
@@ -312,6 +315,9 @@ func (m *Model) Encode(ctx context.Context, data *dataset.Set) (mean, sigma *mat
 	if n == 0 {
 		return nil, nil, fmt.Errorf("vae.Encode: data: no records: %w", layers.ErrInvalidArgument)
 	}
+	if m.lean != nil {
+		return m.leanEncode(ctx, data)
+	}
 	mean, sigma = mat.NewDense(n, d, nil), mat.NewDense(n, d, nil)
 	err = m.forChunks(ctx, kindEncode, n, 1, defaultInferLimits(), func(p *program, first int, idx []int) error {
 		if err := m.fillInputs(p, data, idx); err != nil {
@@ -348,6 +354,9 @@ func (m *Model) Decode(ctx context.Context, z mat.Matrix, labels []int) (*mat.De
 	}
 	if err := m.checkLabels("Decode", labels, n); err != nil {
 		return nil, err
+	}
+	if m.lean != nil {
+		return m.leanDecode(ctx, z, labels)
 	}
 	out := mat.NewDense(n, m.width, nil)
 	err := m.forChunks(ctx, kindDecode, n, 1, defaultInferLimits(), func(p *program, first int, idx []int) error {
@@ -394,6 +403,9 @@ func (m *Model) Reconstruct(ctx context.Context, data *dataset.Set) (*mat.Dense,
 	n := data.Len()
 	if n == 0 {
 		return nil, fmt.Errorf("vae.Reconstruct: data: no records: %w", layers.ErrInvalidArgument)
+	}
+	if m.lean != nil {
+		return m.leanReconstruct(ctx, data)
 	}
 	out := mat.NewDense(n, m.width, nil)
 	err := m.forChunks(ctx, kindReconstruct, n, 1, defaultInferLimits(), func(p *program, first int, idx []int) error {

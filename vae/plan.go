@@ -403,13 +403,13 @@ type leanWork[T float] struct {
 	rowLL     []float64 // per decoder row
 	rowLW     []float64 // per decoder row: log p(z) - log q(z|x)
 	// per record of the current chunk
-	sumLL, kl, mc, lseM, lseS []float64
-	klDim                     []float64 // (rows, D)
+	sumLL, kl, mc []float64
+	lse           []logSumExp // the importance weights, streamed
+	klDim         []float64   // (rows, D)
 	// per call
 	likA, likB     []float64 // learned Gaussian: log-variance and precision per feature
 	compMu, compLV []float64 // mixture or vamp components, (comps, D)
 	compW          []float64 // log weights
-	compTmp        []float64 // per component, one z at a time
 	pcg            *rand.PCG
 	rng            *rand.Rand
 }
@@ -420,7 +420,7 @@ func (p *planT[T]) newWork() *leanWork[T] {
 		a: make([]T, r*p.maxW), b: make([]T, r*p.maxW), tmp: make([]T, p.maxTmp),
 		x: make([]T, r*p.f), mu: make([]T, r*p.d), lv: make([]T, r*p.d), z: make([]T, r*p.decIn), eps: make([]T, p.d),
 		zRec: make([]int, r), out: make([]T, r*p.f), rowLL: make([]float64, r), rowLW: make([]float64, r),
-		sumLL: make([]float64, r), kl: make([]float64, r), mc: make([]float64, r), lseM: make([]float64, r), lseS: make([]float64, r),
+		sumLL: make([]float64, r), kl: make([]float64, r), mc: make([]float64, r), lse: make([]logSumExp, r),
 		klDim: make([]float64, r*p.d),
 		headW: make([]T, max(p.head.in, p.vampHd.in)*2*p.d), headOut: make([]T, r*2*p.d),
 	}
@@ -429,7 +429,7 @@ func (p *planT[T]) newWork() *leanWork[T] {
 	}
 	if p.comps > 0 {
 		w.compMu, w.compLV = make([]float64, p.comps*p.d), make([]float64, p.comps*p.d)
-		w.compW, w.compTmp = make([]float64, p.comps), make([]float64, p.comps)
+		w.compW = make([]float64, p.comps)
 	}
 	w.pcg = rand.NewPCG(0, 0)
 	w.rng = rand.New(w.pcg)
