@@ -65,13 +65,26 @@ func (r inferenceResults) diff(want inferenceResults) string {
 }
 
 // TestConcurrentInference runs every inference method from 64 goroutines
-// at once on one model and wants results identical to a serial run. Run
-// it with -race.
+// at once on one model and wants results identical to a serial run, on
+// the lean path and on the graphs. Run it with -race.
 func TestConcurrentInference(t *testing.T) {
-	m, err := NewMLP(MLPConfig{Input: 12, Hidden: []int{8}, Latent: 3, Seed: 1}) // float32, the default
-	if err != nil {
-		t.Fatal(err)
+	for _, path := range []string{"lean", "graph"} {
+		t.Run(path, func(t *testing.T) {
+			m, err := NewMLP(MLPConfig{Input: 12, Hidden: []int{8}, Latent: 3, Seed: 1}) // float32, the default
+			if err != nil {
+				t.Fatal(err)
+			}
+			if path == "graph" {
+				graphOnly(m)
+			} else if m.lean == nil {
+				t.Fatalf("not on the lean path: %v", m.leanWhy)
+			}
+			testConcurrentInference(t, m)
+		})
 	}
+}
+
+func testConcurrentInference(t *testing.T, m *Model) {
 	data := binarySet(t, 20, 12, 1)
 	z, err := m.SamplePrior(7, 3)
 	if err != nil {
