@@ -45,11 +45,13 @@ func BenchmarkTrainEpoch1000(b *testing.B) {
 	m, data := benchModel(b), benchData(b, 1000)
 	b.ReportAllocs()
 	b.ResetTimer()
+	cpu0 := cpuTime()
 	for i := 0; i < b.N; i++ {
 		if _, err := m.Train(context.Background(), data, TrainConfig{Epochs: 1, Seed: uint64(i)}); err != nil {
 			b.Fatal(err)
 		}
 	}
+	reportCPU(b, cpu0, b.N*data.Len())
 	b.ReportMetric(float64(b.N*data.Len())/b.Elapsed().Seconds(), "records/s")
 }
 
@@ -62,6 +64,7 @@ func BenchmarkScoreParallel(b *testing.B) {
 	}
 	b.ReportAllocs()
 	b.ResetTimer()
+	cpu0 := cpuTime()
 	b.RunParallel(func(pb *testing.PB) {
 		for pb.Next() {
 			if _, err := m.Score(context.Background(), data, ScoreOptions{K: 16, Seed: 3}); err != nil {
@@ -70,5 +73,6 @@ func BenchmarkScoreParallel(b *testing.B) {
 			}
 		}
 	})
+	reportCPU(b, cpu0, b.N*data.Len())
 	b.ReportMetric(float64(b.N*data.Len())/b.Elapsed().Seconds(), "records/s")
 }

@@ -41,9 +41,9 @@ import (
 var ErrNotLean = errors.New("vae: part not supported by the lean inference path")
 
 // LeanLayer is the optional interface through which a user-written layer
-// joins the lean inference path (Scorer, and the model's inference methods
-// once they run on it). A layer that does not implement it is still
-// served, by the graphs.
+// joins the lean inference path (the model's inference methods and the
+// Scorer). A layer that does not implement it is still served, by the
+// graphs.
 //
 // The contract:
 //   - LeanShape maps the per-record input shape (without the batch axis:
@@ -152,11 +152,8 @@ type leanPlan struct {
 // an error wrapping ErrNotLean that names the part, when a part is not
 // built in and does not implement LeanLayer. Compiling is cheap and reads
 // no parameter values; the result is safe for concurrent use and stays
-// valid for the life of the model (parameters are read at call time).
-//
-// This is the entry point for switching Encode, Decode, Reconstruct, Score
-// and Evaluate to the lean path: compile once (in New, and again in Load),
-// keep the result on the model, and use the graphs when ok is false.
+// valid for the life of the model (parameters are read at call time). New
+// (and so Load) compiles it once into Model.lean.
 func (m *Model) leanPlan() (*leanPlan, bool, error) {
 	if m.dtype == tensor.Float32 {
 		p, err := compilePlan(m, kernels[float32]{gemm: gemm32, data: (*tensor.Dense).Float32s,
