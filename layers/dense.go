@@ -68,19 +68,29 @@ func (d *Dense) Bias() *Param { return d.bias }
 func (d *Dense) Params() []*Param { return []*Param{d.weight, d.bias} }
 
 // Forward returns x W + b for x of shape (N, in) in the parameters' dtype.
+// The product and the bias run as one fused op (see dense_op.go).
 func (d *Dense) Forward(s *Scope, x *G.Node) (*G.Node, error) {
-	where := "layers.Dense(" + d.name + ").Forward"
+	return d.forward("layers.Dense("+d.name+").Forward", s, x, Identity)
+}
+
+// forward returns act(x W + b) as one fused op, forward and backward.
+func (d *Dense) forward(where string, s *Scope, x *G.Node, act Activation) (*G.Node, error) {
 	if err := checkInput(where, s, x, d.weight.Value.Dtype()); err != nil {
 		return nil, err
 	}
 	if sh := x.Shape(); sh.Dims() != 2 || sh[1] != d.in || sh[0] < 1 {
 		return nil, argError(where, "x", "shape %v, want (N, %d)", sh, d.in)
 	}
-	xw, err := G.Mul(x, s.Bind(d.weight))
-	if err != nil {
-		return nil, fmt.Errorf("%s: %w", where, err)
+	if !fusable(act) {
+		// Unreachable for the activations of this package; kept so that
+		// a new activation works before it has a fused form.
+		y, err := d.forward(where, s, x, Identity)
+		if err != nil {
+			return nil, err
+		}
+		return act.Apply(y)
 	}
-	y, err := G.BroadcastAdd(xw, s.Bind(d.bias), nil, []byte{0})
+	y, err := G.ApplyOp(&denseOp{act: act}, x, s.Bind(d.weight), s.Bind(d.bias))
 	if err != nil {
 		return nil, fmt.Errorf("%s: %w", where, err)
 	}

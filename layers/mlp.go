@@ -99,15 +99,13 @@ func (m *MLP) Forward(s *Scope, x *G.Node) (*G.Node, error) {
 	where := "layers.MLP(" + m.name + ").Forward"
 	h := x
 	for i, d := range m.layers {
-		var err error
-		if h, err = d.Forward(s, h); err != nil {
-			return nil, fmt.Errorf("%s: %w", where, err)
-		}
 		act := m.cfg.Activation
 		if i+1 == len(m.layers) {
 			act = m.cfg.Output
 		}
-		if h, err = act.Apply(h); err != nil {
+		// Each layer and its activation run as one fused op.
+		var err error
+		if h, err = d.forward("layers.Dense("+d.name+").Forward", s, h, act); err != nil {
 			return nil, fmt.Errorf("%s: %w", where, err)
 		}
 	}

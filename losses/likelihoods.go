@@ -18,11 +18,13 @@ type Bernoulli struct{}
 
 // LogProb returns the log-likelihood of each record, shape (N).
 func (Bernoulli) LogProb(s *layers.Scope, x, out *G.Node) (*G.Node, error) {
-	lp, err := BernoulliLogProb(x, out)
+	// One fused op for the terms and their sum over features (see
+	// bernoulli_op.go).
+	lp, err := bernoulliPerSample(x, out)
 	if err != nil {
 		return nil, fmt.Errorf("losses.Bernoulli.LogProb: %w", err)
 	}
-	return PerSample(lp)
+	return lp, nil
 }
 
 // Mean returns sigmoid(out), the probability of a one.

@@ -30,7 +30,7 @@ func BernoulliLogProb(x, logits *G.Node) (*G.Node, error) {
 	if err := checkSame(where, "logits", logits, "x", x); err != nil {
 		return nil, err
 	}
-	out, err := G.ApplyOp(bernoulliOp{}, x, logits)
+	out, err := G.ApplyOp(&bernoulliOp{}, x, logits)
 	if err != nil {
 		return nil, opError(where, "Bernoulli", err)
 	}
