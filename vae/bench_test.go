@@ -57,8 +57,14 @@ func BenchmarkTrainEpoch1000(b *testing.B) {
 
 // BenchmarkScoreParallel scores 128-record batches with K = 16 importance
 // samples from all GOMAXPROCS goroutines at once, as a service would.
-func BenchmarkScoreParallel(b *testing.B) {
-	m, data := benchModel(b), benchData(b, 128)
+func BenchmarkScoreParallel(b *testing.B) { benchScoreParallel(b, benchModel(b)) }
+
+// BenchmarkScoreParallelGraph is the same with the model forced onto the
+// graph path.
+func BenchmarkScoreParallelGraph(b *testing.B) { benchScoreParallel(b, graphOnly(benchModel(b))) }
+
+func benchScoreParallel(b *testing.B, m *Model) {
+	data := benchData(b, 128)
 	if _, err := m.Score(context.Background(), data, ScoreOptions{K: 16}); err != nil {
 		b.Fatal(err)
 	}

@@ -79,6 +79,8 @@ type kernels[T float] struct {
 	data func(t *tensor.Dense) []T
 	// forward runs a LeanLayer in this dtype.
 	forward func(l LeanLayer, in, out []T, rows int)
+	// bernoulli returns log p(x|logits) of one record (see bernoulli32).
+	bernoulli func(x, logits []T, cols []float64) float64
 }
 
 // leanOp is one compiled step of an encoder or decoder.
@@ -156,14 +158,14 @@ type leanPlan struct {
 // (and so Load) compiles it once into Model.lean.
 func (m *Model) leanPlan() (*leanPlan, bool, error) {
 	if m.dtype == tensor.Float32 {
-		p, err := compilePlan(m, kernels[float32]{gemm: gemm32, data: (*tensor.Dense).Float32s,
+		p, err := compilePlan(m, kernels[float32]{gemm: gemm32, data: (*tensor.Dense).Float32s, bernoulli: bernoulli32,
 			forward: func(l LeanLayer, in, out []float32, rows int) { l.LeanForward32(in, out, rows) }})
 		if err != nil {
 			return nil, false, err
 		}
 		return &leanPlan{p32: p}, true, nil
 	}
-	p, err := compilePlan(m, kernels[float64]{gemm: gemm64, data: (*tensor.Dense).Float64s,
+	p, err := compilePlan(m, kernels[float64]{gemm: gemm64, data: (*tensor.Dense).Float64s, bernoulli: bernoulli64,
 		forward: func(l LeanLayer, in, out []float64, rows int) { l.LeanForward64(in, out, rows) }})
 	if err != nil {
 		return nil, false, err
@@ -440,11 +442,21 @@ func (p *planT[T]) putWork(w *leanWork[T]) { p.pool.Put(w) }
 // layers runs feature-major (see runFeatureMajor).
 const featureMajorRows = 16
 
-// denseChain reports whether ops holds only dense layers and activations.
+// featureMajorWidth is the widest layer of a chain that runs
+// feature-major: the inner loop of a feature-major product runs along at
+// most leanRows records, that of a row-major one along the layer's units,
+// so wide layers run faster row-major.
+const featureMajorWidth = 2 * leanRows
+
+// denseChain reports whether ops holds only dense layers and activations,
+// none wider than featureMajorWidth.
 func denseChain[T float](ops []leanOp[T]) bool {
 	for _, op := range ops {
 		switch op.(type) {
 		case *denseOp[T], *actOp[T]:
+			if op.width() > featureMajorWidth {
+				return false
+			}
 		default:
 			return false
 		}

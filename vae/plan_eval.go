@@ -6,6 +6,7 @@ import (
 	"runtime"
 	"sync"
 
+	"lowerbound.dev/internal/vecmath"
 	"lowerbound.dev/losses"
 )
 
@@ -281,14 +282,7 @@ func (p *planT[T]) logLikRow(w *leanWork[T], x, out []T, cols []float64) float64
 	var sum float64
 	switch p.lik {
 	case likBernoulli:
-		for j, lt := range out {
-			l, xv := float64(lt), float64(x[j])
-			v := (xv*l - math.Max(l, 0)) - math.Log1p(math.Exp(-math.Abs(l)))
-			sum += v
-			if cols != nil {
-				cols[j] -= v
-			}
-		}
+		sum = p.k.bernoulli(x, out, cols)
 	case likGaussian:
 		a, b := -0.5/(p.sigma*p.sigma), -math.Log(p.sigma)-0.5*log2Pi
 		for j, mt := range out {
@@ -307,6 +301,42 @@ func (p *planT[T]) logLikRow(w *leanWork[T], x, out []T, cols []float64) float64
 			if cols != nil {
 				cols[j] -= v
 			}
+		}
+	}
+	return sum
+}
+
+// bernoulli32 returns the Bernoulli log-likelihood of one record,
+// sum_j x_j*l_j - softplus(l_j), from its logits, and subtracts each term
+// from cols[j] when cols is given. Each term is computed as the graphs'
+// float32 Bernoulli op computes it (losses/bernoulli_op.go): in float32,
+// softplus(l) = max(l, 0) + log1p(exp(-|l|)) with vecmath.Log1pExp32, and
+// summed in float64.
+func bernoulli32(x, logits []float32, cols []float64) float64 {
+	var sum float64
+	for j, l := range logits {
+		relu, negAbs := l, -l
+		if l < 0 {
+			relu, negAbs = 0, l
+		}
+		v := float64((x[j]*l - relu) - vecmath.Log1pExp32(negAbs))
+		sum += v
+		if cols != nil {
+			cols[j] -= v
+		}
+	}
+	return sum
+}
+
+// bernoulli64 is bernoulli32 in float64, with the formula of the graphs'
+// float64 op.
+func bernoulli64(x, logits []float64, cols []float64) float64 {
+	var sum float64
+	for j, l := range logits {
+		v := (x[j]*l - math.Max(l, 0)) - math.Log1p(math.Exp(-math.Abs(l)))
+		sum += v
+		if cols != nil {
+			cols[j] -= v
 		}
 	}
 	return sum
