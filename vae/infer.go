@@ -10,6 +10,7 @@ import (
 	"gorgonia.org/tensor"
 
 	"lowerbound.dev/layers"
+	"lowerbound.dev/priors"
 	"lowerbound.dev/vae/dataset"
 )
 
@@ -432,9 +433,15 @@ func (m *Model) SamplePrior(n int, seed uint64) (*mat.Dense, error) {
 	// A prior may compile a graph of its own over the model's parameters
 	// to sample (the VampPrior runs the encoder); compiling writes to the
 	// shared tensors, so it excludes running programs like acquire does.
-	m.engine.Lock()
+	// The other built-in priors only read their parameters.
+	lock, unlock := m.engine.Lock, m.engine.Unlock
+	switch m.cfg.Prior.(type) {
+	case *priors.StandardNormal, *priors.Diagonal, *priors.Mixture:
+		lock, unlock = m.engine.RLock, m.engine.RUnlock
+	}
+	lock()
 	t, err := m.cfg.Prior.Sample(rand.New(rand.NewPCG(seed, 0x9e3779b97f4a7c15)), n)
-	m.engine.Unlock()
+	unlock()
 	if err != nil {
 		return nil, fmt.Errorf("vae.SamplePrior: %w", err)
 	}
