@@ -273,8 +273,8 @@ func resolveScoring(extra map[string]string, calibrated bool, opt Options) (scor
 
 // exampleRecord returns a record in raw units every column accepts: each
 // real column at its training mean (the standardizer's), a positive one
-// at 1 standard deviation above it, counts and binaries at 0 and the first
-// category. It is a typical record only for the real columns.
+// 1 standard deviation above it, counts and binaries at 0 and the first
+// category. It shows the format; it need not be a normal record.
 func (l *loaded) exampleRecord() []any {
 	out := make([]any, len(l.cols))
 	for j, c := range l.cols {

@@ -556,8 +556,10 @@ type Health struct {
 	Classes int `json:"classes,omitempty"`
 	// Missing says whether records may have missing values.
 	Missing bool `json:"missing"`
-	// Example is a record every column accepts, in column order (a
-	// typical one for the real columns: their training means).
+	// Example is a record every column accepts, in column order: each
+	// real column at its training mean. It shows the format; it is not a
+	// normal record (the means of sensors that move together rarely occur
+	// together), so it may well score above the threshold.
 	Example     []any              `json:"example"`
 	Score       scoring            `json:"score"`
 	Calibration *HealthCalibration `json:"calibration,omitempty"`

@@ -107,7 +107,9 @@ func run(ctx context.Context, base string, n, c int, d time.Duration, seed uint6
 	}
 	// 256 request bodies: the server's example record (the training means
 	// of the real columns) with each real value moved by up to 0.2
-	// standard deviations, under the classes in turn.
+	// standard deviations, under the classes in turn. They measure the
+	// cost of a request, not detection: many of them score above the
+	// threshold.
 	rng := rand.New(rand.NewPCG(seed, 7))
 	bodies := make([][]byte, 256)
 	for i := range bodies {
