@@ -28,7 +28,9 @@
 // It scores with the checkpoint's K by default and refuses a -k (or
 // -mean) that conflicts with a calibrated checkpoint's: a threshold
 // calibrated at one K is not valid at another. -seed may differ (it
-// changes a record's noise, not the distribution of its score).
+// changes a record's noise, not the distribution of its score). A reload
+// resolves the settings again for the new file: one that conflicts with
+// an explicit -k fails, and the old model keeps serving.
 // Checkpoints without a schema get columns named after the likelihood's
 // (or feature_0, feature_1, ...); checkpoints of the first telemetry
 // example (all-real sensors, "telemetry.features" and

@@ -228,13 +228,15 @@ func (l *loaded) readLabels() error {
 	return nil
 }
 
-// resolveScoring chooses K, seed and the mean score: the checkpoint's
-// when it records them (a conflicting explicit option is an error when
-// the checkpoint has a calibration, since a threshold calibrated at one K
-// is not valid at another), else the options.
+// resolveScoring chooses K, seed and the mean score. A checkpoint with a
+// calibration is scored as its calibration was (metadata score.k,
+// score.mean), and an explicit option that conflicts is an error, since a
+// threshold calibrated at one K is not valid at another. Otherwise the
+// explicit options win, then the checkpoint's settings, then K = 1. The
+// seed is the explicit one, else the checkpoint's, else opt.Seed.
 func resolveScoring(extra map[string]string, calibrated bool, opt Options) (scoring, error) {
 	s := scoring{K: max(opt.K, 1), Seed: opt.Seed, Mean: opt.Mean, From: "default"}
-	if opt.K > 0 {
+	if opt.K > 0 || opt.Mean {
 		s.From = "flag"
 	}
 	if v, ok := extra[extraScoreSeed]; ok && !opt.SeedSet {
@@ -244,30 +246,25 @@ func resolveScoring(extra map[string]string, calibrated bool, opt Options) (scor
 		}
 		s.Seed = seed
 	}
-	v, ok := extra[extraScoreK]
-	if !ok {
-		if s.Mean && s.K > 1 {
-			return s, fmt.Errorf("-mean scores at the posterior mean; -k %d asks for importance samples: give one or the other", s.K)
+	v, recorded := extra[extraScoreK]
+	if recorded && (calibrated || s.From == "default") {
+		k, err := strconv.Atoi(v)
+		if err != nil || k < 1 {
+			return s, fmt.Errorf("metadata %s: %q is not a K >= 1", extraScoreK, v)
 		}
-		return s, nil
-	}
-	k, err := strconv.Atoi(v)
-	if err != nil || k < 1 {
-		return s, fmt.Errorf("metadata %s: %q is not a K >= 1", extraScoreK, v)
-	}
-	mean := extra[extraScoreMean] == "true"
-	if calibrated {
-		if opt.K > 0 && opt.K != k {
+		mean := extra[extraScoreMean] == "true"
+		if calibrated && opt.K > 0 && opt.K != k {
 			return s, fmt.Errorf("-k %d conflicts with the checkpoint: its alarm calibration was scored with K = %d (metadata %s), and a threshold calibrated at one K is not valid at another; drop -k (or recalibrate at K = %d)", opt.K, k, extraScoreK, opt.K)
 		}
-		if opt.Mean != mean {
+		if calibrated && opt.Mean != mean {
 			how := map[bool]string{true: "at the posterior mean", false: "by sampling"}
 			return s, fmt.Errorf("-mean=%v conflicts with the checkpoint: its alarm calibration was scored %s (metadata %s), and its threshold is valid only for scores computed the same way", opt.Mean, how[mean], extraScoreMean)
 		}
-	} else if opt.K > 0 {
-		return s, nil // no calibration to keep valid: the flag wins
+		s.K, s.Mean, s.From = k, mean, "checkpoint"
 	}
-	s.K, s.Mean, s.From = k, mean, "checkpoint"
+	if s.Mean && s.K > 1 {
+		return s, fmt.Errorf("-mean scores at the posterior mean; K = %d (%s) asks for importance samples: give one or the other", s.K, s.From)
+	}
 	return s, nil
 }
 

@@ -792,3 +792,44 @@ func TestTelemetryCheckpointKeys(t *testing.T) {
 		t.Fatalf("served %v, SDK %v", got["score"], want[0])
 	}
 }
+
+// TestResolveScoring checks the choice of K, seed and mean score from the
+// checkpoint's metadata and the flags, case by case.
+func TestResolveScoring(t *testing.T) {
+	rec := map[string]string{extraScoreK: "4", extraScoreSeed: "7"}
+	cases := []struct {
+		name       string
+		extra      map[string]string
+		calibrated bool
+		opt        Options
+		want       scoring
+		err        string
+	}{
+		{"nothing recorded, no flags", nil, true, Options{Seed: 1}, scoring{K: 1, Seed: 1, From: "default"}, ""},
+		{"nothing recorded, -k", nil, true, Options{K: 3, Seed: 1}, scoring{K: 3, Seed: 1, From: "flag"}, ""},
+		{"recorded, no flags", rec, true, Options{Seed: 1}, scoring{K: 4, Seed: 7, From: "checkpoint"}, ""},
+		{"recorded, the same -k and -seed", rec, true, Options{K: 4, Seed: 2, SeedSet: true}, scoring{K: 4, Seed: 2, From: "checkpoint"}, ""},
+		{"recorded, another -k", rec, true, Options{K: 2}, scoring{}, "-k 2 conflicts with the checkpoint: its alarm calibration was scored with K = 4"},
+		{"recorded, -mean", rec, true, Options{Mean: true}, scoring{}, "-mean=true conflicts"},
+		{"recorded mean, no -mean", map[string]string{extraScoreK: "1", extraScoreMean: "true"}, true, Options{}, scoring{}, "-mean=false conflicts"},
+		{"recorded mean, -mean", map[string]string{extraScoreK: "1", extraScoreMean: "true"}, true, Options{Mean: true}, scoring{K: 1, Mean: true, From: "checkpoint"}, ""},
+		{"recorded without calibration, -k", rec, false, Options{K: 2}, scoring{K: 2, Seed: 7, From: "flag"}, ""},
+		{"recorded without calibration, -mean", rec, false, Options{Mean: true}, scoring{K: 1, Seed: 7, Mean: true, From: "flag"}, ""},
+		{"recorded without calibration, no flags", rec, false, Options{}, scoring{K: 4, Seed: 7, From: "checkpoint"}, ""},
+		{"malformed K", map[string]string{extraScoreK: "many"}, true, Options{}, scoring{}, `score.k: "many" is not a K`},
+		{"malformed seed", map[string]string{extraScoreSeed: "-1"}, true, Options{}, scoring{}, `score.seed: "-1" is not a seed`},
+		{"-mean with -k", nil, false, Options{K: 3, Mean: true}, scoring{}, "-mean scores at the posterior mean; K = 3"},
+	}
+	for _, tc := range cases {
+		got, err := resolveScoring(tc.extra, tc.calibrated, tc.opt)
+		if tc.err != "" {
+			if err == nil || !strings.Contains(err.Error(), tc.err) {
+				t.Errorf("%s: %+v, %v; want an error naming %q", tc.name, got, err, tc.err)
+			}
+			continue
+		}
+		if err != nil || got != tc.want {
+			t.Errorf("%s: %+v, %v; want %+v", tc.name, got, err, tc.want)
+		}
+	}
+}
