@@ -1,4 +1,4 @@
 // Package internal holds code shared by the SDK's own packages and commands
-// that is not part of the public API: the MNIST locator and the benchmark
-// command live below it.
+// that is not part of the public API: the matrix-product engine the graphs
+// run on (gemm), the MNIST locator and the benchmark commands live below it.
 package internal

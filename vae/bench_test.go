@@ -45,23 +45,32 @@ func BenchmarkTrainEpoch1000(b *testing.B) {
 	m, data := benchModel(b), benchData(b, 1000)
 	b.ReportAllocs()
 	b.ResetTimer()
+	cpu0 := cpuTime()
 	for i := 0; i < b.N; i++ {
 		if _, err := m.Train(context.Background(), data, TrainConfig{Epochs: 1, Seed: uint64(i)}); err != nil {
 			b.Fatal(err)
 		}
 	}
+	reportCPU(b, cpu0, b.N*data.Len())
 	b.ReportMetric(float64(b.N*data.Len())/b.Elapsed().Seconds(), "records/s")
 }
 
 // BenchmarkScoreParallel scores 128-record batches with K = 16 importance
 // samples from all GOMAXPROCS goroutines at once, as a service would.
-func BenchmarkScoreParallel(b *testing.B) {
-	m, data := benchModel(b), benchData(b, 128)
+func BenchmarkScoreParallel(b *testing.B) { benchScoreParallel(b, benchModel(b)) }
+
+// BenchmarkScoreParallelGraph is the same with the model forced onto the
+// graph path.
+func BenchmarkScoreParallelGraph(b *testing.B) { benchScoreParallel(b, graphOnly(benchModel(b))) }
+
+func benchScoreParallel(b *testing.B, m *Model) {
+	data := benchData(b, 128)
 	if _, err := m.Score(context.Background(), data, ScoreOptions{K: 16}); err != nil {
 		b.Fatal(err)
 	}
 	b.ReportAllocs()
 	b.ResetTimer()
+	cpu0 := cpuTime()
 	b.RunParallel(func(pb *testing.PB) {
 		for pb.Next() {
 			if _, err := m.Score(context.Background(), data, ScoreOptions{K: 16, Seed: 3}); err != nil {
@@ -70,5 +79,6 @@ func BenchmarkScoreParallel(b *testing.B) {
 			}
 		}
 	})
+	reportCPU(b, cpu0, b.N*data.Len())
 	b.ReportMetric(float64(b.N*data.Len())/b.Elapsed().Seconds(), "records/s")
 }

@@ -9,6 +9,7 @@ import (
 
 	"gonum.org/v1/gonum/mat"
 
+	"lowerbound.dev/priors"
 	"lowerbound.dev/vae/dataset"
 )
 
@@ -17,6 +18,7 @@ type inferenceResults struct {
 	score1, score5 []float64
 	mean, sigma    *mat.Dense
 	recon, decoded *mat.Dense
+	generated      *mat.Dense
 	report         Report
 }
 
@@ -39,6 +41,9 @@ func runInference(m *Model, data *dataset.Set, z *mat.Dense) (inferenceResults, 
 	if r.decoded, err = m.Decode(ctx, z, nil); err != nil {
 		return r, fmt.Errorf("Decode: %w", err)
 	}
+	if r.generated, err = m.Generate(ctx, 4, nil, 6); err != nil {
+		return r, fmt.Errorf("Generate: %w", err)
+	}
 	if r.report, err = m.Evaluate(ctx, data, EvalOptions{K: 2, Seed: 5}); err != nil {
 		return r, fmt.Errorf("Evaluate: %w", err)
 	}
@@ -58,6 +63,8 @@ func (r inferenceResults) diff(want inferenceResults) string {
 		return "Reconstruct"
 	case !mat.Equal(r.decoded, want.decoded):
 		return "Decode"
+	case !mat.Equal(r.generated, want.generated):
+		return "Generate"
 	case r.report.NegELBO != want.report.NegELBO || r.report.NLL != want.report.NLL || !slices.Equal(r.report.KLPerDim, want.report.KLPerDim):
 		return "Evaluate"
 	}
@@ -65,13 +72,35 @@ func (r inferenceResults) diff(want inferenceResults) string {
 }
 
 // TestConcurrentInference runs every inference method from 64 goroutines
-// at once on one model and wants results identical to a serial run. Run
-// it with -race.
+// at once on one model and wants results identical to a serial run, on
+// the lean path and on the graphs. Run it with -race.
 func TestConcurrentInference(t *testing.T) {
-	m, err := NewMLP(MLPConfig{Input: 12, Hidden: []int{8}, Latent: 3, Seed: 1}) // float32, the default
-	if err != nil {
-		t.Fatal(err)
+	for _, path := range []string{"lean", "graph", "lean mixture prior"} {
+		t.Run(path, func(t *testing.T) {
+			cfg := MLPConfig{Input: 12, Hidden: []int{8}, Latent: 3, Seed: 1} // float32, the default
+			if path == "lean mixture prior" {
+				// Its Generate samples under the read lock.
+				pr, err := priors.NewMixture("mix", 4, 3, priors.MixtureOptions{Seed: 2})
+				if err != nil {
+					t.Fatal(err)
+				}
+				cfg.Prior = pr
+			}
+			m, err := NewMLP(cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if path == "graph" {
+				graphOnly(m)
+			} else if m.lean == nil {
+				t.Fatalf("not on the lean path: %v", m.leanWhy)
+			}
+			testConcurrentInference(t, m)
+		})
 	}
+}
+
+func testConcurrentInference(t *testing.T, m *Model) {
 	data := binarySet(t, 20, 12, 1)
 	z, err := m.SamplePrior(7, 3)
 	if err != nil {

@@ -51,14 +51,22 @@
 // the KL per latent dimension, the active units (Burda, Grosse and
 // Salakhutdinov 2016) and, with K >= 2 samples, the importance-weighted
 // estimate of -log p(x). Encode, Decode, Reconstruct, Generate,
-// Interpolate and Score (a per-record anomaly score) run on pooled
-// inference graphs and are safe for concurrent use. The noise of a record
+// Interpolate and Score (a per-record anomaly score) are safe for
+// concurrent use. They run on the lean inference path: New compiles the
+// model's parts into a plan that computes on plain slices with pooled
+// scratch, no graph involved, and gives the graphs' numbers (float64 to
+// about 1e-12 relative, float32 to about 1e-5). A model with a part the
+// plan does not know (a user-written layer that does not implement
+// LeanLayer, or a user-written likelihood or prior) runs the same methods
+// on pooled inference graphs instead, with the same results. A Scorer
+// scores records from plain slices, one or a few per call, without
+// allocating. The noise of a record
 // depends only on the seed given and the record's key (its index in the
 // data by default, or ScoreOptions.Keys), so its score does not depend on
 // the other records, batching or concurrency; ScoreOptions.AtPosteriorMean
 // gives a score with no noise at all. Score and Evaluate run any number of
-// samples K in bounded memory, in chunks of at most a few thousand rows,
-// and check the context between chunks. A float32 model refuses values
+// samples K in bounded memory, in blocks of at most a few thousand rows,
+// and check the context between blocks. A float32 model refuses values
 // beyond the float32 range with an error naming the record and feature.
 //
 // # Mixed records and missing values

@@ -60,7 +60,7 @@ type Report struct {
 
 // Evaluate computes the report over every record of data.
 func (m *Model) Evaluate(ctx context.Context, data *dataset.Set, opt EvalOptions) (Report, error) {
-	return m.evaluate(ctx, data, opt, defaultInferLimits())
+	return m.evaluate(ctx, data, opt, leanLimits())
 }
 
 func (m *Model) evaluate(ctx context.Context, data *dataset.Set, opt EvalOptions, lim inferLimits) (Report, error) {
@@ -86,7 +86,7 @@ func (m *Model) evaluate(ctx context.Context, data *dataset.Set, opt EvalOptions
 	means := make([]float64, 0, n*d)
 	var sumRec, sumKL, sumIW float64
 	run := sampledRun{data: data, k: k, seed: opt.Seed, keys: opt.Keys}
-	err := m.forSampled(ctx, run, lim, func(first int, c *sampledChunk) error {
+	err := m.sampled(ctx, run, true, lim, func(first int, c *sampledChunk) error {
 		for i := 0; i < c.count; i++ {
 			sumRec -= c.logLik[i]
 			sumKL += c.kl[i]
@@ -210,7 +210,7 @@ type ScoreOptions struct {
 // can be +Inf (a record the model finds impossible at the working
 // precision).
 func (m *Model) Score(ctx context.Context, data *dataset.Set, opt ScoreOptions) ([]float64, error) {
-	return m.score(ctx, data, opt, defaultInferLimits())
+	return m.score(ctx, data, opt, leanLimits())
 }
 
 func (m *Model) score(ctx context.Context, data *dataset.Set, opt ScoreOptions, lim inferLimits) ([]float64, error) {
@@ -233,7 +233,7 @@ func (m *Model) score(ctx context.Context, data *dataset.Set, opt ScoreOptions, 
 	}
 	out := make([]float64, n)
 	run := sampledRun{data: data, k: k, seed: opt.Seed, keys: opt.Keys, atMean: opt.AtPosteriorMean}
-	err := m.forSampled(ctx, run, lim, func(first int, c *sampledChunk) error {
+	err := m.sampled(ctx, run, false, lim, func(first int, c *sampledChunk) error {
 		for i := 0; i < c.count; i++ {
 			s := c.kl[i] - c.logLik[i]
 			if k >= 2 {

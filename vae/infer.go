@@ -10,6 +10,7 @@ import (
 	"gorgonia.org/tensor"
 
 	"lowerbound.dev/layers"
+	"lowerbound.dev/priors"
 	"lowerbound.dev/vae/dataset"
 )
 
@@ -32,6 +33,9 @@ type inferLimits struct {
 	// beforeRun, when not nil, is called before every program run with
 	// the program's key (tests count runs with it).
 	beforeRun func(programKey)
+	// lean runs the call on the model's lean plan when it has one (see
+	// leanLimits); the bounds above then do not apply.
+	lean bool
 }
 
 func defaultInferLimits() inferLimits {
@@ -356,6 +360,9 @@ func (m *Model) Encode(ctx context.Context, data *dataset.Set) (mean, sigma *mat
 	if n == 0 {
 		return nil, nil, fmt.Errorf("vae.Encode: data: no records: %w", layers.ErrInvalidArgument)
 	}
+	if m.lean != nil {
+		return m.leanEncode(ctx, data)
+	}
 	mean, sigma = mat.NewDense(n, d, nil), mat.NewDense(n, d, nil)
 	err = m.forChunks(ctx, kindEncode, n, 1, defaultInferLimits(), func(p *program, first int, idx []int) error {
 		if err := m.fillInputs(p, data, idx); err != nil {
@@ -392,6 +399,9 @@ func (m *Model) Decode(ctx context.Context, z mat.Matrix, labels []int) (*mat.De
 	}
 	if err := m.checkLabels("Decode", labels, n); err != nil {
 		return nil, err
+	}
+	if m.lean != nil {
+		return m.leanDecode(ctx, z, labels)
 	}
 	out := mat.NewDense(n, m.width, nil)
 	err := m.forChunks(ctx, kindDecode, n, 1, defaultInferLimits(), func(p *program, first int, idx []int) error {
@@ -439,6 +449,9 @@ func (m *Model) Reconstruct(ctx context.Context, data *dataset.Set) (*mat.Dense,
 	if n == 0 {
 		return nil, fmt.Errorf("vae.Reconstruct: data: no records: %w", layers.ErrInvalidArgument)
 	}
+	if m.lean != nil {
+		return m.leanReconstruct(ctx, data)
+	}
 	out := mat.NewDense(n, m.width, nil)
 	err := m.forChunks(ctx, kindReconstruct, n, 1, defaultInferLimits(), func(p *program, first int, idx []int) error {
 		if err := m.fillInputs(p, data, idx); err != nil {
@@ -464,9 +477,15 @@ func (m *Model) SamplePrior(n int, seed uint64) (*mat.Dense, error) {
 	// A prior may compile a graph of its own over the model's parameters
 	// to sample (the VampPrior runs the encoder); compiling writes to the
 	// shared tensors, so it excludes running programs like acquire does.
-	m.engine.Lock()
+	// The other built-in priors only read their parameters.
+	lock, unlock := m.engine.Lock, m.engine.Unlock
+	switch m.cfg.Prior.(type) {
+	case *priors.StandardNormal, *priors.Diagonal, *priors.Mixture:
+		lock, unlock = m.engine.RLock, m.engine.RUnlock
+	}
+	lock()
 	t, err := m.cfg.Prior.Sample(rand.New(rand.NewPCG(seed, 0x9e3779b97f4a7c15)), n)
-	m.engine.Unlock()
+	unlock()
 	if err != nil {
 		return nil, fmt.Errorf("vae.SamplePrior: %w", err)
 	}

@@ -118,6 +118,13 @@ type Model struct {
 	// parameter tensors included, which races with programs reading them.
 	engine sync.RWMutex
 
+	// lean is the model's parts compiled for the lean inference path
+	// (plan.go), or nil when a part is not supported: leanWhy then says
+	// which. The inference methods run on it when it is set and on the
+	// graphs otherwise; tests clear it to run the graph path.
+	lean    *leanPlan
+	leanWhy error
+
 	extra map[string]string
 }
 
@@ -231,6 +238,7 @@ func New(cfg Config) (*Model, error) {
 		}
 		return nil, fmt.Errorf("%w: the parts do not fit together: %w", ErrConfig, err)
 	}
+	m.lean, _, m.leanWhy = m.leanPlan()
 	return m, nil
 }
 

@@ -41,9 +41,9 @@ import (
 var ErrNotLean = errors.New("vae: part not supported by the lean inference path")
 
 // LeanLayer is the optional interface through which a user-written layer
-// joins the lean inference path (Scorer, and the model's inference methods
-// once they run on it). A layer that does not implement it is still
-// served, by the graphs.
+// joins the lean inference path (the model's inference methods and the
+// Scorer). A layer that does not implement it is still served, by the
+// graphs.
 //
 // The contract:
 //   - LeanShape maps the per-record input shape (without the batch axis:
@@ -79,6 +79,8 @@ type kernels[T float] struct {
 	data func(t *tensor.Dense) []T
 	// forward runs a LeanLayer in this dtype.
 	forward func(l LeanLayer, in, out []T, rows int)
+	// bernoulli returns log p(x|logits) of one record (see bernoulli32).
+	bernoulli func(x, logits []T, cols []float64) float64
 }
 
 // leanOp is one compiled step of an encoder or decoder.
@@ -152,21 +154,18 @@ type leanPlan struct {
 // an error wrapping ErrNotLean that names the part, when a part is not
 // built in and does not implement LeanLayer. Compiling is cheap and reads
 // no parameter values; the result is safe for concurrent use and stays
-// valid for the life of the model (parameters are read at call time).
-//
-// This is the entry point for switching Encode, Decode, Reconstruct, Score
-// and Evaluate to the lean path: compile once (in New, and again in Load),
-// keep the result on the model, and use the graphs when ok is false.
+// valid for the life of the model (parameters are read at call time). New
+// (and so Load) compiles it once into Model.lean.
 func (m *Model) leanPlan() (*leanPlan, bool, error) {
 	if m.dtype == tensor.Float32 {
-		p, err := compilePlan(m, kernels[float32]{gemm: gemm32, data: (*tensor.Dense).Float32s,
+		p, err := compilePlan(m, kernels[float32]{gemm: gemm32, data: (*tensor.Dense).Float32s, bernoulli: bernoulli32,
 			forward: func(l LeanLayer, in, out []float32, rows int) { l.LeanForward32(in, out, rows) }})
 		if err != nil {
 			return nil, false, err
 		}
 		return &leanPlan{p32: p}, true, nil
 	}
-	p, err := compilePlan(m, kernels[float64]{gemm: gemm64, data: (*tensor.Dense).Float64s,
+	p, err := compilePlan(m, kernels[float64]{gemm: gemm64, data: (*tensor.Dense).Float64s, bernoulli: bernoulli64,
 		forward: func(l LeanLayer, in, out []float64, rows int) { l.LeanForward64(in, out, rows) }})
 	if err != nil {
 		return nil, false, err
@@ -403,13 +402,13 @@ type leanWork[T float] struct {
 	rowLL     []float64 // per decoder row
 	rowLW     []float64 // per decoder row: log p(z) - log q(z|x)
 	// per record of the current chunk
-	sumLL, kl, mc, lseM, lseS []float64
-	klDim                     []float64 // (rows, D)
+	sumLL, kl, mc []float64
+	lse           []logSumExp // the importance weights, streamed
+	klDim         []float64   // (rows, D)
 	// per call
 	likA, likB     []float64 // learned Gaussian: log-variance and precision per feature
 	compMu, compLV []float64 // mixture or vamp components, (comps, D)
 	compW          []float64 // log weights
-	compTmp        []float64 // per component, one z at a time
 	pcg            *rand.PCG
 	rng            *rand.Rand
 }
@@ -420,7 +419,7 @@ func (p *planT[T]) newWork() *leanWork[T] {
 		a: make([]T, r*p.maxW), b: make([]T, r*p.maxW), tmp: make([]T, p.maxTmp),
 		x: make([]T, r*p.f), mu: make([]T, r*p.d), lv: make([]T, r*p.d), z: make([]T, r*p.decIn), eps: make([]T, p.d),
 		zRec: make([]int, r), out: make([]T, r*p.f), rowLL: make([]float64, r), rowLW: make([]float64, r),
-		sumLL: make([]float64, r), kl: make([]float64, r), mc: make([]float64, r), lseM: make([]float64, r), lseS: make([]float64, r),
+		sumLL: make([]float64, r), kl: make([]float64, r), mc: make([]float64, r), lse: make([]logSumExp, r),
 		klDim: make([]float64, r*p.d),
 		headW: make([]T, max(p.head.in, p.vampHd.in)*2*p.d), headOut: make([]T, r*2*p.d),
 	}
@@ -429,7 +428,7 @@ func (p *planT[T]) newWork() *leanWork[T] {
 	}
 	if p.comps > 0 {
 		w.compMu, w.compLV = make([]float64, p.comps*p.d), make([]float64, p.comps*p.d)
-		w.compW, w.compTmp = make([]float64, p.comps), make([]float64, p.comps)
+		w.compW = make([]float64, p.comps)
 	}
 	w.pcg = rand.NewPCG(0, 0)
 	w.rng = rand.New(w.pcg)
@@ -443,11 +442,21 @@ func (p *planT[T]) putWork(w *leanWork[T]) { p.pool.Put(w) }
 // layers runs feature-major (see runFeatureMajor).
 const featureMajorRows = 16
 
-// denseChain reports whether ops holds only dense layers and activations.
+// featureMajorWidth is the widest layer of a chain that runs
+// feature-major: the inner loop of a feature-major product runs along at
+// most leanRows records, that of a row-major one along the layer's units,
+// so wide layers run faster row-major.
+const featureMajorWidth = 2 * leanRows
+
+// denseChain reports whether ops holds only dense layers and activations,
+// none wider than featureMajorWidth.
 func denseChain[T float](ops []leanOp[T]) bool {
 	for _, op := range ops {
 		switch op.(type) {
 		case *denseOp[T], *actOp[T]:
+			if op.width() > featureMajorWidth {
+				return false
+			}
 		default:
 			return false
 		}

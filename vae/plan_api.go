@@ -22,42 +22,52 @@ func (lp *leanPlan) evaluate(ctx context.Context, x []float64, labels []int, n i
 }
 
 // encode writes the posterior mean and standard deviation of n records,
-// (n, D) each, as Encode returns them.
-func (lp *leanPlan) encode(x []float64, labels []int, n int, mean, sigma []float64) {
+// (n, D) each, as Encode returns them. It stops with ctx's error between
+// blocks of records.
+func (lp *leanPlan) encode(ctx context.Context, x []float64, labels []int, n int, mean, sigma []float64) error {
 	if lp.p32 != nil {
-		lp.p32.encode(x, labels, n, mean, sigma)
-		return
+		return lp.p32.encode(ctx, x, labels, n, mean, sigma)
 	}
-	lp.p64.encode(x, labels, n, mean, sigma)
+	return lp.p64.encode(ctx, x, labels, n, mean, sigma)
 }
 
 // decode writes the likelihood mean (n, F) for n latent rows z (n, D), as
 // Decode returns it.
-func (lp *leanPlan) decode(z []float64, labels []int, n int, out []float64) {
+func (lp *leanPlan) decode(ctx context.Context, z []float64, labels []int, n int, out []float64) error {
 	if lp.p32 != nil {
-		lp.p32.decode(z, labels, n, out)
-		return
+		return lp.p32.decode(ctx, z, labels, n, out)
 	}
-	lp.p64.decode(z, labels, n, out)
+	return lp.p64.decode(ctx, z, labels, n, out)
 }
 
 // reconstruct writes decode(posterior mean) (n, F) for n records, as
 // Reconstruct returns it.
-func (lp *leanPlan) reconstruct(x []float64, labels []int, n int, out []float64) {
+func (lp *leanPlan) reconstruct(ctx context.Context, x []float64, labels []int, n int, out []float64) error {
 	if lp.p32 != nil {
-		lp.p32.reconstruct(x, labels, n, out)
-		return
+		return lp.p32.reconstruct(ctx, x, labels, n, out)
 	}
-	lp.p64.reconstruct(x, labels, n, out)
+	return lp.p64.reconstruct(ctx, x, labels, n, out)
 }
 
-func (p *planT[T]) encode(x []float64, labels []int, n int, mean, sigma []float64) {
+// closedKL reports whether the plan's prior has a closed-form KL (and so
+// a KL per latent dimension).
+func (lp *leanPlan) closedKL() bool {
+	if lp.p32 != nil {
+		return lp.p32.closed
+	}
+	return lp.p64.closed
+}
+
+func (p *planT[T]) encode(ctx context.Context, x []float64, labels []int, n int, mean, sigma []float64) error {
 	p.m.engine.RLock()
 	defer p.m.engine.RUnlock()
 	w := p.getWork()
 	defer p.putWork(w)
 	f, d := p.f, p.d
 	for first := 0; first < n; first += leanRows {
+		if err := ctxErr(ctx); err != nil {
+			return err
+		}
 		rows := min(leanRows, n-first)
 		toT(w.x[:rows*f], x[first*f:(first+rows)*f])
 		var lab []int
@@ -70,28 +80,36 @@ func (p *planT[T]) encode(x []float64, labels []int, n int, mean, sigma []float6
 			sigma[first*d+i] = math.Exp(0.5 * float64(w.lv[i]))
 		}
 	}
+	return nil
 }
 
-func (p *planT[T]) decode(z []float64, labels []int, n int, out []float64) {
+func (p *planT[T]) decode(ctx context.Context, z []float64, labels []int, n int, out []float64) error {
 	p.m.engine.RLock()
 	defer p.m.engine.RUnlock()
 	w := p.getWork()
 	defer p.putWork(w)
 	d := p.d
 	for first := 0; first < n; first += leanRows {
+		if err := ctxErr(ctx); err != nil {
+			return err
+		}
 		rows := min(leanRows, n-first)
 		toT(w.mu[:rows*d], z[first*d:(first+rows)*d])
 		p.meanRows(w, labels, first, rows, out)
 	}
+	return nil
 }
 
-func (p *planT[T]) reconstruct(x []float64, labels []int, n int, out []float64) {
+func (p *planT[T]) reconstruct(ctx context.Context, x []float64, labels []int, n int, out []float64) error {
 	p.m.engine.RLock()
 	defer p.m.engine.RUnlock()
 	w := p.getWork()
 	defer p.putWork(w)
 	f := p.f
 	for first := 0; first < n; first += leanRows {
+		if err := ctxErr(ctx); err != nil {
+			return err
+		}
 		rows := min(leanRows, n-first)
 		toT(w.x[:rows*f], x[first*f:(first+rows)*f])
 		var lab []int
@@ -101,6 +119,15 @@ func (p *planT[T]) reconstruct(x []float64, labels []int, n int, out []float64) 
 		p.encodeRows(w, lab, rows)
 		p.meanRows(w, labels, first, rows, out)
 	}
+	return nil
+}
+
+// ctxErr is ctx.Err(), and nil for a nil context.
+func ctxErr(ctx context.Context) error {
+	if ctx == nil {
+		return nil
+	}
+	return ctx.Err()
 }
 
 // meanRows decodes the rows latent vectors in w.mu (records first...)

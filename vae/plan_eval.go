@@ -6,6 +6,7 @@ import (
 	"runtime"
 	"sync"
 
+	"lowerbound.dev/internal/vecmath"
 	"lowerbound.dev/losses"
 )
 
@@ -18,13 +19,14 @@ type leanEval struct {
 	// keys holds the noise key of every record; nil means the record's
 	// index in the call.
 	keys []uint64
-	// mean scores at the posterior mean: the reconstruction term at
-	// z = mu and the closed-form KL (the Monte Carlo KL from k samples
-	// when the prior has none).
+	// mean scores at the posterior mean without noise (k and the keys
+	// do not matter): the reconstruction term at z = mu and the
+	// closed-form KL, or log q(mu|x) - log p(mu) when the prior has none
+	// (see ScoreOptions.AtPosteriorMean).
 	mean bool
 
 	logLik []float64 // log p(x|z), averaged over the samples
-	kl     []float64 // closed-form KL, or the Monte Carlo estimate
+	kl     []float64 // closed-form KL, or the Monte Carlo estimate (at z = mu with mean)
 	klDim  []float64 // closed-form KL per dimension (left alone when the prior has none)
 	iw     []float64 // importance-weighted log p(x) estimate (k >= 2)
 	score  []float64 // -iw for k >= 2, else kl - logLik
@@ -115,7 +117,7 @@ func (p *planT[T]) evalChunk(ctx context.Context, w *leanWork[T], x []float64, l
 	p.encodeRows(w, lab, n)
 	k := e.k
 	for i := 0; i < n; i++ {
-		w.sumLL[i], w.mc[i], w.lseM[i], w.lseS[i] = 0, 0, math.Inf(-1), 0
+		w.sumLL[i], w.mc[i], w.lse[i] = 0, 0, logSumExp{}
 		w.kl[i] = 0
 		if p.closed {
 			w.kl[i] = p.klRow(w, w.mu[i*d:(i+1)*d], w.lv[i*d:(i+1)*d], w.klDim[i*d:(i+1)*d])
@@ -131,15 +133,13 @@ func (p *planT[T]) evalChunk(ctx context.Context, w *leanWork[T], x []float64, l
 		}
 		p.flush(w, e, first, n, 1, false)
 		if !p.closed {
-			// Monte Carlo KL from k samples, no decoding needed.
+			// The Monte Carlo KL's integrand at z = mu, without noise.
 			for i := 0; i < n; i++ {
-				p.seed(w, e, first+i)
-				for s := 0; s < k; s++ {
-					z := p.sample(w, i)
-					w.mc[i] += p.logQ(z, w.mu[i*d:(i+1)*d], w.lv[i*d:(i+1)*d]) - p.logPrior(w, z)
-				}
+				mu := w.mu[i*d : (i+1)*d]
+				w.mc[i] = p.logQ(mu, mu, w.lv[i*d:(i+1)*d]) - p.logPrior(w, mu)
 			}
 		}
+		k = 1
 	} else {
 		dens := k > 1 || !p.closed
 		rows := 0
@@ -167,20 +167,14 @@ func (p *planT[T]) evalChunk(ctx context.Context, w *leanWork[T], x []float64, l
 	fk := float64(k)
 	for i := 0; i < n; i++ {
 		r := first + i
-		ll := w.sumLL[i]
-		if !e.mean {
-			ll /= fk
-		}
+		ll := w.sumLL[i] / fk
 		kl := w.kl[i]
 		if !p.closed {
 			kl = w.mc[i] / fk
 		}
 		iw := math.NaN()
-		if k >= 2 && !e.mean {
-			iw = w.lseM[i] + math.Log(w.lseS[i]) - math.Log(fk)
-			if w.lseS[i] == 0 {
-				iw = math.Inf(-1)
-			}
+		if k >= 2 {
+			iw = w.lse[i].value() - math.Log(fk) // log (1/K) sum_s w_s
 		}
 		if e.logLik != nil {
 			e.logLik[r] = ll
@@ -192,7 +186,7 @@ func (p *planT[T]) evalChunk(ctx context.Context, w *leanWork[T], x []float64, l
 			e.iw[r] = iw
 		}
 		if e.score != nil {
-			if k >= 2 && !e.mean {
+			if k >= 2 {
 				e.score[r] = -iw
 			} else {
 				e.score[r] = kl - ll
@@ -207,7 +201,7 @@ func (p *planT[T]) evalChunk(ctx context.Context, w *leanWork[T], x []float64, l
 			}
 		}
 	}
-	if e.cols != nil && !e.mean && k > 1 {
+	if e.cols != nil && k > 1 {
 		for j := range e.cols[first*f : (first+n)*f] {
 			e.cols[first*f+j] /= fk
 		}
@@ -275,19 +269,7 @@ func (p *planT[T]) flush(w *leanWork[T], e *leanEval, first, rows, k int, dens b
 			w.mc[i] += lq - lp
 		}
 		if k > 1 {
-			lw := ll + lp - lq
-			switch {
-			case math.IsNaN(lw) || math.IsNaN(w.lseM[i]):
-				w.lseM[i], w.lseS[i] = math.NaN(), 1
-			case math.IsInf(lw, -1):
-			case math.IsInf(w.lseM[i], -1):
-				w.lseM[i], w.lseS[i] = lw, 1
-			case lw > w.lseM[i]:
-				w.lseS[i] = w.lseS[i]*math.Exp(w.lseM[i]-lw) + 1
-				w.lseM[i] = lw
-			default:
-				w.lseS[i] += math.Exp(lw - w.lseM[i])
-			}
+			w.lse[i].add(ll + lp - lq) // log w_s, Burda et al. 2016, eq. 8
 		}
 	}
 }
@@ -300,14 +282,7 @@ func (p *planT[T]) logLikRow(w *leanWork[T], x, out []T, cols []float64) float64
 	var sum float64
 	switch p.lik {
 	case likBernoulli:
-		for j, lt := range out {
-			l, xv := float64(lt), float64(x[j])
-			v := (xv*l - math.Max(l, 0)) - math.Log1p(math.Exp(-math.Abs(l)))
-			sum += v
-			if cols != nil {
-				cols[j] -= v
-			}
-		}
+		sum = p.k.bernoulli(x, out, cols)
 	case likGaussian:
 		a, b := -0.5/(p.sigma*p.sigma), -math.Log(p.sigma)-0.5*log2Pi
 		for j, mt := range out {
@@ -326,6 +301,42 @@ func (p *planT[T]) logLikRow(w *leanWork[T], x, out []T, cols []float64) float64
 			if cols != nil {
 				cols[j] -= v
 			}
+		}
+	}
+	return sum
+}
+
+// bernoulli32 returns the Bernoulli log-likelihood of one record,
+// sum_j x_j*l_j - softplus(l_j), from its logits, and subtracts each term
+// from cols[j] when cols is given. Each term is computed as the graphs'
+// float32 Bernoulli op computes it (losses/bernoulli_op.go): in float32,
+// softplus(l) = max(l, 0) + log1p(exp(-|l|)) with vecmath.Log1pExp32, and
+// summed in float64.
+func bernoulli32(x, logits []float32, cols []float64) float64 {
+	var sum float64
+	for j, l := range logits {
+		relu, negAbs := l, -l
+		if l < 0 {
+			relu, negAbs = 0, l
+		}
+		v := float64((x[j]*l - relu) - vecmath.Log1pExp32(negAbs))
+		sum += v
+		if cols != nil {
+			cols[j] -= v
+		}
+	}
+	return sum
+}
+
+// bernoulli64 is bernoulli32 in float64, with the formula of the graphs'
+// float64 op.
+func bernoulli64(x, logits []float64, cols []float64) float64 {
+	var sum float64
+	for j, l := range logits {
+		v := (x[j]*l - math.Max(l, 0)) - math.Log1p(math.Exp(-math.Abs(l)))
+		sum += v
+		if cols != nil {
+			cols[j] -= v
 		}
 	}
 	return sum
@@ -363,9 +374,9 @@ func (p *planT[T]) logPrior(w *leanWork[T], z []T) float64 {
 		return s
 	}
 	// Mixture or VampPrior: log sum_k w_k N(z; mu_k, diag(exp(lv_k))),
-	// with a stable log-sum-exp over the components.
+	// with the stable streaming log-sum-exp over the components.
 	d := p.d
-	mx := math.Inf(-1)
+	var lse logSumExp
 	for c := 0; c < p.comps; c++ {
 		v := w.compW[c]
 		mu, lv := w.compMu[c*d:(c+1)*d], w.compLV[c*d:(c+1)*d]
@@ -373,19 +384,9 @@ func (p *planT[T]) logPrior(w *leanWork[T], z []T) float64 {
 			dv := float64(z[j]) - mu[j]
 			v += -0.5 * (log2Pi + lv[j] + dv*dv*math.Exp(-lv[j]))
 		}
-		w.compTmp[c] = v
-		if v > mx || v != v {
-			mx = v
-		}
+		lse.add(v)
 	}
-	if math.IsInf(mx, 0) || math.IsNaN(mx) {
-		return mx
-	}
-	var s float64
-	for _, v := range w.compTmp {
-		s += math.Exp(v - mx)
-	}
-	return mx + math.Log(s)
+	return lse.value()
 }
 
 // klRow returns the closed-form KL(q || p) of one record and writes its
@@ -432,15 +433,11 @@ func (p *planT[T]) prepare(w *leanWork[T]) {
 	case priorMixture:
 		logits := p.k.data(p.pParams[0].Value)
 		means, lvs := p.k.data(p.pParams[1].Value), p.k.data(p.pParams[2].Value)
-		mx := math.Inf(-1)
+		var l logSumExp
 		for _, v := range logits[:p.comps] {
-			mx = math.Max(mx, float64(v))
+			l.add(float64(v))
 		}
-		var s float64
-		for _, v := range logits[:p.comps] {
-			s += math.Exp(float64(v) - mx)
-		}
-		lse := mx + math.Log(s)
+		lse := l.value()
 		for c := 0; c < p.comps; c++ {
 			w.compW[c] = float64(logits[c]) - lse
 		}

@@ -3,6 +3,7 @@ package vae
 import (
 	"context"
 	"errors"
+	"fmt"
 	"math"
 	"math/rand/v2"
 	"testing"
@@ -208,83 +209,164 @@ func mustPlan(t *testing.T, m *Model) *leanPlan {
 	return lp
 }
 
-// TestLeanEqualsGraph compares the lean path with every graph-path method
-// on every built-in part, in both dtypes.
+// graphOnly makes m run every inference method on the graphs, as a model
+// with a part the lean path does not support does (tests only).
+func graphOnly(m *Model) *Model {
+	m.lean, m.leanWhy = nil, fmt.Errorf("%w: graph path forced by a test", ErrNotLean)
+	return m
+}
+
+// graphBuilds is the number of inference graphs m has compiled.
+func graphBuilds(m *Model) int64 {
+	var n int64
+	for _, k := range []programKind{kindEvaluate, kindEncode, kindDecode, kindReconstruct} {
+		n += m.builds[k].Load()
+	}
+	return n
+}
+
+// TestLeanEqualsGraph runs every inference method on two copies of one
+// model, one on the lean path (the default) and one forced onto the
+// graphs, on every built-in part, in both dtypes: the results must agree.
+// The lean copy must compile no graph while doing so.
 func TestLeanEqualsGraph(t *testing.T) {
 	ctx := context.Background()
 	for _, dt := range []tensor.Dtype{tensor.Float64, tensor.Float32} {
 		for _, tc := range leanCases() {
 			t.Run(dt.String()+"/"+tc.name, func(t *testing.T) {
-				m := tc.build(t, dt)
-				data := tc.data(t, m)
+				lean := tc.build(t, dt)
+				graph := graphOnly(tc.build(t, dt))
+				if lean.lean == nil {
+					t.Fatalf("the model is not on the lean path: %v", lean.leanWhy)
+				}
+				data := tc.data(t, lean)
 				tol := tolFor(dt)
-				lp := mustPlan(t, m)
-				n, f, d := data.Len(), m.Features(), m.Latent()
-				x := data.Values()
-				labels := data.Labels()
-
-				for _, k := range []int{1, 3} {
-					want, err := m.Score(ctx, data, ScoreOptions{K: k, Seed: 11})
-					if err != nil {
-						t.Fatal(err)
-					}
-					got := make([]float64, n)
-					e := leanEval{k: k, seed: 11, score: got}
-					if err := lp.evaluate(ctx, x, labels, n, &e, 2); err != nil {
-						t.Fatal(err)
-					}
-					checkNear(t, "Score K="+string(rune('0'+k)), got, want, tol)
+				builds, graphs := graphBuilds(lean), graphBuilds(graph)
+				n := data.Len()
+				var labels []int
+				if lean.Classes() > 0 {
+					labels = data.Labels()
 				}
 
-				// Evaluate at K = 1 and K = 3: the averages of the per-record terms.
-				for _, k := range []int{1, 3} {
-					rep, err := m.Evaluate(ctx, data, EvalOptions{K: k, Seed: 4})
+				for _, opt := range []ScoreOptions{{K: 1, Seed: 11}, {K: 3, Seed: 11}, {AtPosteriorMean: true}} {
+					want, err := graph.Score(ctx, data, opt)
 					if err != nil {
 						t.Fatal(err)
 					}
-					ll, kl, iw := make([]float64, n), make([]float64, n), make([]float64, n)
-					e := leanEval{k: k, seed: 4, logLik: ll, kl: kl, iw: iw}
-					if err := lp.evaluate(ctx, x, labels, n, &e, 1); err != nil {
+					got, err := lean.Score(ctx, data, opt)
+					if err != nil {
 						t.Fatal(err)
 					}
-					var rec, klSum, nll float64
-					for i := range ll {
-						rec -= ll[i]
-						klSum += kl[i]
-						nll -= iw[i]
+					checkNear(t, fmt.Sprintf("Score %+v", opt), got, want, tol)
+					// The Scorer gives the same numbers (one record at a
+					// time for the first few).
+					s, err := lean.NewScorer(ScorerOptions{K: opt.K, Seed: opt.Seed, Mean: opt.AtPosteriorMean})
+					if err != nil {
+						t.Fatal(err)
 					}
-					got := []float64{rec / float64(n), klSum / float64(n)}
-					want := []float64{rep.Reconstruction, rep.KL}
+					sc := make([]float64, n)
+					if err := s.Score(ctx, sc, Records{X: data.Values(), Labels: labels}, nil); err != nil {
+						t.Fatal(err)
+					}
+					checkNear(t, fmt.Sprintf("Scorer %+v", opt), sc, want, tol)
+					x := data.Values()
+					f := lean.Features()
+					for i := 0; i < 3; i++ {
+						r := Records{X: x[i*f : (i+1)*f], Keys: []uint64{uint64(i)}}
+						if labels != nil {
+							r.Labels = labels[i : i+1]
+						}
+						if err := s.Score(ctx, sc[:1], r, nil); err != nil {
+							t.Fatal(err)
+						}
+						checkNear(t, fmt.Sprintf("Scorer %+v record %d alone", opt, i), sc[:1], want[i:i+1], tol)
+					}
+				}
+
+				for _, k := range []int{1, 3} {
+					want, err := graph.Evaluate(ctx, data, EvalOptions{K: k, Seed: 4})
+					if err != nil {
+						t.Fatal(err)
+					}
+					got, err := lean.Evaluate(ctx, data, EvalOptions{K: k, Seed: 4})
+					if err != nil {
+						t.Fatal(err)
+					}
+					if got.Records != want.Records || got.K != want.K || got.ActiveUnits != want.ActiveUnits ||
+						(got.KLPerDim == nil) != (want.KLPerDim == nil) || math.IsNaN(got.NLL) != (k < 2) {
+						t.Fatalf("Evaluate K=%d: lean %+v, graph %+v", k, got, want)
+					}
+					g := []float64{got.NegELBO, got.Reconstruction, got.KL}
+					w := []float64{want.NegELBO, want.Reconstruction, want.KL}
 					if k > 1 {
-						got, want = append(got, nll/float64(n)), append(want, rep.NLL)
+						g, w = append(g, got.NLL), append(w, want.NLL)
 					}
-					checkNear(t, "Evaluate", got, want, tol)
+					checkNear(t, fmt.Sprintf("Evaluate K=%d", k), g, w, tol)
+					checkNear(t, "Evaluate KLPerDim", got.KLPerDim, want.KLPerDim, tol)
+					checkNear(t, "Evaluate MeanVariance", got.MeanVariance, want.MeanVariance, tol)
 				}
 
-				mean, sigma, err := m.Encode(ctx, data)
+				mean, sigma, err := graph.Encode(ctx, data)
 				if err != nil {
 					t.Fatal(err)
 				}
-				gm, gs := make([]float64, n*d), make([]float64, n*d)
-				lp.encode(x, labels, n, gm, gs)
-				checkNear(t, "Encode mean", gm, mean.RawMatrix().Data, tol)
-				checkNear(t, "Encode sigma", gs, sigma.RawMatrix().Data, tol)
-
-				rec, err := m.Reconstruct(ctx, data)
+				gm, gs, err := lean.Encode(ctx, data)
 				if err != nil {
 					t.Fatal(err)
 				}
-				gr := make([]float64, n*f)
-				lp.reconstruct(x, labels, n, gr)
-				checkNear(t, "Reconstruct", gr, rec.RawMatrix().Data, tol)
+				checkNear(t, "Encode mean", gm.RawMatrix().Data, mean.RawMatrix().Data, tol)
+				checkNear(t, "Encode sigma", gs.RawMatrix().Data, sigma.RawMatrix().Data, tol)
 
-				dec, err := m.Decode(ctx, mean, labels)
+				rec, err := graph.Reconstruct(ctx, data)
 				if err != nil {
 					t.Fatal(err)
 				}
-				gd := make([]float64, n*f)
-				lp.decode(mean.RawMatrix().Data, labels, n, gd)
-				checkNear(t, "Decode", gd, dec.RawMatrix().Data, tol)
+				gr, err := lean.Reconstruct(ctx, data)
+				if err != nil {
+					t.Fatal(err)
+				}
+				checkNear(t, "Reconstruct", gr.RawMatrix().Data, rec.RawMatrix().Data, tol)
+
+				dec, err := graph.Decode(ctx, mean, labels)
+				if err != nil {
+					t.Fatal(err)
+				}
+				gd, err := lean.Decode(ctx, mean, labels)
+				if err != nil {
+					t.Fatal(err)
+				}
+				checkNear(t, "Decode", gd.RawMatrix().Data, dec.RawMatrix().Data, tol)
+
+				genLabels := make([]int, 5)
+				if lean.Classes() == 0 {
+					genLabels = nil
+				}
+				wantGen, err := graph.Generate(ctx, 5, genLabels, 8)
+				if err != nil {
+					t.Fatal(err)
+				}
+				gotGen, err := lean.Generate(ctx, 5, genLabels, 8)
+				if err != nil {
+					t.Fatal(err)
+				}
+				checkNear(t, "Generate", gotGen.RawMatrix().Data, wantGen.RawMatrix().Data, tol)
+
+				wantI, err := graph.Interpolate(ctx, data, 0, 1, 4)
+				if err != nil {
+					t.Fatal(err)
+				}
+				gotI, err := lean.Interpolate(ctx, data, 0, 1, 4)
+				if err != nil {
+					t.Fatal(err)
+				}
+				checkNear(t, "Interpolate", gotI.RawMatrix().Data, wantI.RawMatrix().Data, tol)
+
+				if b := graphBuilds(lean) - builds; b != 0 {
+					t.Fatalf("the lean model compiled %d inference graphs", b)
+				}
+				if graphBuilds(graph) == graphs {
+					t.Fatal("the graph model compiled no inference graph")
+				}
 			})
 		}
 	}
@@ -322,6 +404,105 @@ func TestLeanUserLayer(t *testing.T) {
 		t.Fatal(err)
 	}
 	checkNear(t, "Score", got, want, 1e-12)
+}
+
+// TestGraphFallback builds one model twice from the same seeds: once with
+// a Dense encoder (lean path) and once with the same Dense wrapped in a
+// user layer without LeanLayer. The second must run on the graphs (it
+// compiles inference graphs, its Scorer reports ErrNotLean) and give the
+// first one's numbers from every inference method, for a conditional
+// model with a mixture prior (no closed-form KL).
+func TestGraphFallback(t *testing.T) {
+	ctx := context.Background()
+	build := func(wrap func(layers.Layer) layers.Layer) *Model {
+		opt := layers.Options{Dtype: tensor.Float64, Seed: 3}
+		enc, _ := layers.NewDense("enc", 6, 5, opt)
+		head, _ := layers.NewGaussianHead("head", 5, 2, layers.Options{Dtype: tensor.Float64, Seed: 1})
+		dec, _ := layers.NewMLP("dec", layers.MLPConfig{Sizes: []int{4, 5, 4}}, layers.Options{Dtype: tensor.Float64, Seed: 2})
+		pr, _ := priors.NewMixture("mix", 3, 2, priors.MixtureOptions{Dtype: tensor.Float64, Seed: 4})
+		m, err := New(Config{InputShape: []int{4}, Encoder: wrap(enc), Head: head, Decoder: dec, Prior: pr,
+			Likelihood: losses.Gaussian{Sigma: 0.8}, Classes: 2, Dtype: tensor.Float64})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return perturb(t, m, 7)
+	}
+	lean := build(func(l layers.Layer) layers.Layer { return l })
+	user := build(func(l layers.Layer) layers.Layer { return opaqueLayer{l} })
+	if lean.lean == nil {
+		t.Fatalf("Dense encoder: not on the lean path: %v", lean.leanWhy)
+	}
+	if user.lean != nil || !errors.Is(user.leanWhy, ErrNotLean) {
+		t.Fatalf("user encoder: lean plan %v, reason %v; want none, ErrNotLean", user.lean != nil, user.leanWhy)
+	}
+	data := labelled(t, realSet(t, 70, 4, 6), 2)
+	labels := data.Labels()
+	const tol = 1e-12
+	builds := graphBuilds(user)
+	for _, opt := range []ScoreOptions{{K: 1, Seed: 2}, {K: 4, Seed: 2, Keys: make([]uint64, 70)}, {AtPosteriorMean: true}} {
+		want, err := lean.Score(ctx, data, opt)
+		if err != nil {
+			t.Fatal(err)
+		}
+		got, err := user.Score(ctx, data, opt)
+		if err != nil {
+			t.Fatal(err)
+		}
+		checkNear(t, fmt.Sprintf("Score %+v", opt), got, want, tol)
+		s, err := user.NewScorer(ScorerOptions{K: opt.K, Seed: opt.Seed, Mean: opt.AtPosteriorMean})
+		if err != nil {
+			t.Fatal(err)
+		}
+		if ok, why := s.Lean(); ok || !errors.Is(why, ErrNotLean) {
+			t.Fatalf("Scorer on the user model: lean %v, %v", ok, why)
+		}
+		sc := make([]float64, 70)
+		if err := s.Score(ctx, sc, Records{X: data.Values(), Labels: labels, Keys: opt.Keys}, nil); err != nil {
+			t.Fatal(err)
+		}
+		checkNear(t, fmt.Sprintf("Scorer %+v", opt), sc, want, tol)
+		err = s.Score(ctx, sc, Records{X: data.Values(), Labels: labels}, make([]float64, 70*4))
+		if !errors.Is(err, ErrNotLean) {
+			t.Fatalf("per-feature terms through the graphs: %v, want ErrNotLean", err)
+		}
+	}
+	want, err := lean.Evaluate(ctx, data, EvalOptions{K: 3, Seed: 5})
+	if err != nil {
+		t.Fatal(err)
+	}
+	got, err := user.Evaluate(ctx, data, EvalOptions{K: 3, Seed: 5})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got.KLPerDim != nil || want.KLPerDim != nil || got.ActiveUnits != want.ActiveUnits {
+		t.Fatalf("Evaluate: user %+v, lean %+v", got, want)
+	}
+	checkNear(t, "Evaluate", []float64{got.NegELBO, got.Reconstruction, got.KL, got.NLL}, []float64{want.NegELBO, want.Reconstruction, want.KL, want.NLL}, tol)
+	checkNear(t, "Evaluate MeanVariance", got.MeanVariance, want.MeanVariance, tol)
+	pairs := []struct {
+		name string
+		call func(m *Model) (*mat.Dense, error)
+	}{
+		{"Encode", func(m *Model) (*mat.Dense, error) { mu, _, err := m.Encode(ctx, data); return mu, err }},
+		{"Encode sigma", func(m *Model) (*mat.Dense, error) { _, s, err := m.Encode(ctx, data); return s, err }},
+		{"Reconstruct", func(m *Model) (*mat.Dense, error) { return m.Reconstruct(ctx, data) }},
+		{"Generate", func(m *Model) (*mat.Dense, error) { return m.Generate(ctx, 3, []int{1, 0, 1}, 9) }},
+		{"Interpolate", func(m *Model) (*mat.Dense, error) { return m.Interpolate(ctx, data, 2, 5, 3) }},
+	}
+	for _, p := range pairs {
+		w, err := p.call(lean)
+		if err != nil {
+			t.Fatalf("%s: %v", p.name, err)
+		}
+		g, err := p.call(user)
+		if err != nil {
+			t.Fatalf("%s: %v", p.name, err)
+		}
+		checkNear(t, p.name, g.RawMatrix().Data, w.RawMatrix().Data, tol)
+	}
+	if graphBuilds(user) == builds {
+		t.Fatal("the user model compiled no inference graph: it did not fall back to the graphs")
+	}
 }
 
 // opaqueLayer wraps a layer without implementing LeanLayer.

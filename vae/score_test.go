@@ -5,11 +5,13 @@ import (
 	"math"
 	"testing"
 
+	"gonum.org/v1/gonum/floats"
 	"gonum.org/v1/gonum/stat/distuv"
 	"gorgonia.org/tensor"
 
 	"lowerbound.dev/layers"
 	"lowerbound.dev/losses"
+	"lowerbound.dev/priors"
 )
 
 // TestScoreKeyedNoise checks that a record's score depends on its key, not
@@ -167,4 +169,86 @@ func TestScoreAtPosteriorMean(t *testing.T) {
 	}
 	_, err = m.Score(ctx, data, ScoreOptions{AtPosteriorMean: true, K: 2})
 	wantErr(t, "AtPosteriorMean with K 2", err, layers.ErrInvalidArgument, "K", "AtPosteriorMean")
+}
+
+// TestScoreAtPosteriorMeanNoClosedForm checks the deterministic score of a
+// model whose prior has no closed-form KL (a Gaussian mixture) against an
+// independent computation: -log p(x | z = mu) + log q(mu | x) - log p(mu)
+// (the definition in ScoreOptions.AtPosteriorMean), every density from
+// gonum's distuv.Normal, the mixture's log-density as gonum's
+// floats.LogSumExp of log w_k + log N(mu; m_k, diag(exp(lv_k))). mu and
+// sigma come from Encode, the decoded mean from Decode and the weights
+// from Mixture.Weights; the densities are computed here. It runs on the
+// lean path, on the graphs and through a Scorer, all three against the
+// reference (1e-12 relative: float64 sums of a few terms).
+func TestScoreAtPosteriorMeanNoClosedForm(t *testing.T) {
+	ctx := context.Background()
+	const sigma = 0.7
+	build := func() (*Model, *priors.Mixture) {
+		pr, err := priors.NewMixture("mix", 3, 2, priors.MixtureOptions{Dtype: tensor.Float64, Seed: 4})
+		if err != nil {
+			t.Fatal(err)
+		}
+		m := mustMLP(t, MLPConfig{Input: 6, Hidden: []int{8}, Latent: 2, Likelihood: losses.Gaussian{Sigma: sigma},
+			Prior: pr, Dtype: tensor.Float64, Seed: 12})
+		return m, pr
+	}
+	lean, pr := build()
+	graph, _ := build()
+	graphOnly(graph)
+	data := realSet(t, 9, 6, 3)
+	mean, sd, err := lean.Encode(ctx, data)
+	if err != nil {
+		t.Fatal(err)
+	}
+	dec, err := lean.Decode(ctx, mean, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	w, err := pr.Weights()
+	if err != nil {
+		t.Fatal(err)
+	}
+	ps := pr.Params()
+	cm, clv := ps[1].Value.Float64s(), ps[2].Value.Float64s()
+	want := make([]float64, data.Len())
+	for r := range want {
+		var logLik, logQ float64
+		for f, xf := range data.Row(r) {
+			logLik += distuv.Normal{Mu: dec.At(r, f), Sigma: sigma}.LogProb(xf)
+		}
+		comp := make([]float64, len(w))
+		for j := 0; j < 2; j++ {
+			logQ += distuv.Normal{Mu: mean.At(r, j), Sigma: sd.At(r, j)}.LogProb(mean.At(r, j))
+		}
+		for k := range comp {
+			comp[k] = math.Log(w[k])
+			for j := 0; j < 2; j++ {
+				comp[k] += distuv.Normal{Mu: cm[k*2+j], Sigma: math.Exp(clv[k*2+j] / 2)}.LogProb(mean.At(r, j))
+			}
+		}
+		want[r] = -logLik + logQ - floats.LogSumExp(comp)
+	}
+	for _, m := range []*Model{lean, graph} {
+		got, err := m.Score(ctx, data, ScoreOptions{AtPosteriorMean: true, Seed: 5})
+		if err != nil {
+			t.Fatal(err)
+		}
+		for r := range got {
+			if !relClose(got[r], want[r], 1e-12) {
+				t.Fatalf("lean path %v: record %d: score at the posterior mean %.15g, reference %.15g", m.lean != nil, r, got[r], want[r])
+			}
+		}
+	}
+	got, err := lean.ScoreRecords(ctx, Records{X: data.Values()}, ScorerOptions{Mean: true})
+	if err != nil {
+		t.Fatal(err)
+	}
+	for r := range got {
+		if !relClose(got[r], want[r], 1e-12) {
+			t.Fatalf("Scorer: record %d: score at the posterior mean %.15g, reference %.15g", r, got[r], want[r])
+		}
+	}
+	_, err = lean.NewScorer(ScorerOptions{Mean: true, K: 2})
+	wantErr(t, "Scorer with Mean and K 2", err, layers.ErrInvalidArgument, "K", "Mean")
 }

@@ -25,11 +25,12 @@ type ScorerOptions struct {
 	// normals of rand.New(rand.NewPCG(Seed, key)).NormFloat64, sample by
 	// sample, so a record scores the same whatever else is in the call.
 	Seed uint64
-	// Mean scores at the posterior mean instead of sampling:
-	// -log p(x|z = mu) + KL(q(z|x) || p(z)), a deterministic score
-	// without noise. The KL is the closed form when the prior has one;
-	// for a prior without one (mixture, VampPrior) it is the Monte Carlo
-	// estimate from K samples with the record's noise.
+	// Mean scores at the posterior mean instead of sampling, the
+	// deterministic score of ScoreOptions.AtPosteriorMean:
+	// -log p(x|z = mu) + KL(q(z|x) || p(z)), with the KL in closed form
+	// when the prior has one and log q(mu|x) - log p(mu) for a prior
+	// without one (mixture, VampPrior). K must then be 0 or 1; Seed and
+	// Keys do not matter.
 	Mean bool
 	// Workers is the number of goroutines a call over many records may
 	// use; 0 means GOMAXPROCS. Calls of up to 128 records always run on
@@ -59,8 +60,8 @@ type Records struct {
 //
 // A model with a part the lean path does not run (a user-written layer
 // that does not implement LeanLayer, or a user-written likelihood or
-// prior) is scored through the model's graphs instead: then Keys must be
-// nil, Mean false and no per-feature terms can be asked for (such calls
+// prior) is scored through the model's graphs instead, with the same
+// scores, except that no per-feature terms can be asked for (such calls
 // return an error wrapping ErrNotLean).
 type Scorer struct {
 	m    *Model
@@ -78,14 +79,10 @@ func (m *Model) NewScorer(opt ScorerOptions) (*Scorer, error) {
 	if opt.Workers < 0 {
 		return nil, fmt.Errorf("vae.NewScorer: Workers: %d, want >= 0: %w", opt.Workers, layers.ErrInvalidArgument)
 	}
-	s := &Scorer{m: m, opt: opt, k: max(opt.K, 1)}
-	lp, ok, err := m.leanPlan()
-	if ok {
-		s.lean = lp
-	} else {
-		s.why = err
+	if opt.Mean && opt.K > 1 {
+		return nil, fmt.Errorf("vae.NewScorer: K: %d with Mean, want 0 or 1: %w", opt.K, layers.ErrInvalidArgument)
 	}
-	return s, nil
+	return &Scorer{m: m, opt: opt, k: max(opt.K, 1), lean: m.lean, why: m.leanWhy}, nil
 }
 
 // Lean reports whether the scorer runs on the lean inference path, and
@@ -139,13 +136,8 @@ func (s *Scorer) Score(ctx context.Context, scores []float64, r Records, columns
 // run.
 func (s *Scorer) graphScore(ctx context.Context, scores []float64, r Records, columns []float64) error {
 	const where = "vae.Scorer.Score"
-	if s.opt.Mean || columns != nil {
-		return fmt.Errorf("%s: %w (%v): the graph path has no mean score and no per-feature terms", where, ErrNotLean, s.why)
-	}
-	for i, k := range r.Keys {
-		if k != uint64(i) {
-			return fmt.Errorf("%s: Keys: %w (%v): the graph path keys records by their index", where, ErrNotLean, s.why)
-		}
+	if columns != nil {
+		return fmt.Errorf("%s: columns: %w (%v): the graph path has no per-feature terms", where, ErrNotLean, s.why)
 	}
 	n := len(r.X) / s.m.width
 	data, err := dataset.New(r.X, n, s.m.width)
@@ -157,7 +149,7 @@ func (s *Scorer) graphScore(ctx context.Context, scores []float64, r Records, co
 			return fmt.Errorf("%s: %w", where, err)
 		}
 	}
-	out, err := s.m.Score(ctx, data, ScoreOptions{K: s.opt.K, Seed: s.opt.Seed})
+	out, err := s.m.Score(ctx, data, ScoreOptions{K: s.opt.K, Seed: s.opt.Seed, Keys: r.Keys, AtPosteriorMean: s.opt.Mean})
 	if err != nil {
 		return err
 	}
@@ -167,8 +159,7 @@ func (s *Scorer) graphScore(ctx context.Context, scores []float64, r Records, co
 
 // ScoreRecords scores the records of r with a Scorer made for the call:
 // the convenient form of Scorer.Score for one-off calls (it allocates the
-// result and compiles the lean path each time; keep a Scorer to avoid
-// both).
+// result; keep a Scorer and a result slice to avoid that).
 func (m *Model) ScoreRecords(ctx context.Context, r Records, opt ScorerOptions) ([]float64, error) {
 	s, err := m.NewScorer(opt)
 	if err != nil {

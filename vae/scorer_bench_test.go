@@ -17,6 +17,9 @@ import (
 // posterior sample (the negative ELBO). Compare them in one run:
 //
 //	go test -run '^$' -bench 'ScoreRecord|ScoreBatch' -benchtime 20000x ./vae
+//
+// The ...Model benchmarks run Model.Score (the lean path, from a data
+// set); the ...Graph ones force the same model onto the graphs.
 //	../shared/bench/torch-serve 1
 
 func serveModel(b *testing.B) *Model {
@@ -94,10 +97,16 @@ func BenchmarkScoreRecord(b *testing.B) {
 	reportLatency(b, lat)
 }
 
-// BenchmarkScoreRecordGraph is the same through the graph path
-// (Model.Score on a one-record data set), for comparison.
-func BenchmarkScoreRecordGraph(b *testing.B) {
-	m := serveModel(b)
+// BenchmarkScoreRecordModel is the same through Model.Score on a
+// one-record data set (the lean path, with a data set and a result slice
+// per call).
+func BenchmarkScoreRecordModel(b *testing.B) { benchScoreRecordModel(b, serveModel(b)) }
+
+// BenchmarkScoreRecordGraph is the same through the graph path, for
+// comparison.
+func BenchmarkScoreRecordGraph(b *testing.B) { benchScoreRecordModel(b, graphOnly(serveModel(b))) }
+
+func benchScoreRecordModel(b *testing.B, m *Model) {
 	x := serveRecords(b, 256)
 	sets := make([]*dataset.Set, 256)
 	for i := range sets {
@@ -150,9 +159,14 @@ func BenchmarkScoreBatch(b *testing.B) {
 	b.ReportMetric(float64(b.N*n)/b.Elapsed().Seconds(), "records/s")
 }
 
-// BenchmarkScoreBatchGraph is the same through Model.Score.
-func BenchmarkScoreBatchGraph(b *testing.B) {
-	m := serveModel(b)
+// BenchmarkScoreBatchModel is the same through Model.Score (the lean
+// path).
+func BenchmarkScoreBatchModel(b *testing.B) { benchScoreBatchModel(b, serveModel(b)) }
+
+// BenchmarkScoreBatchGraph is the same through the graph path.
+func BenchmarkScoreBatchGraph(b *testing.B) { benchScoreBatchModel(b, graphOnly(serveModel(b))) }
+
+func benchScoreBatchModel(b *testing.B, m *Model) {
 	const n = 100000
 	data, err := dataset.New(serveRecords(b, n), n, 24)
 	if err != nil {

@@ -338,8 +338,12 @@ func TestScorerGraphFallback(t *testing.T) {
 	if !slices.Equal(got, want) {
 		t.Fatalf("fallback scores %v, Model.Score %v", got, want)
 	}
-	if _, err := m.ScoreRecords(ctx, Records{X: data.Values()}, ScorerOptions{Mean: true}); !errors.Is(err, ErrNotLean) {
-		t.Fatalf("mean score through the graphs: %v, want ErrNotLean", err)
+	s, err := m.NewScorer(ScorerOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := s.Score(ctx, make([]float64, 6), Records{X: data.Values()}, make([]float64, 6*4)); !errors.Is(err, ErrNotLean) {
+		t.Fatalf("per-feature terms through the graphs: %v, want ErrNotLean", err)
 	}
 }
 

@@ -81,7 +81,7 @@ Flags:
 	fs.Uint64Var(&cfg.Seed, "seed", cfg.Seed, "seed of the demo data and weights, and of the scoring noise (default for scoring: the checkpoint's score.seed)")
 	fs.IntVar(&cfg.Epochs, "epochs", cfg.Epochs, "training epochs of the demo model")
 	fs.IntVar(&cfg.K, "k", cfg.K, "importance samples per score (1 scores by the negative ELBO); 0: the checkpoint's score.k, else 1 (the demo model: 16). Must match a calibrated checkpoint's")
-	fs.BoolVar(&cfg.Mean, "mean", cfg.Mean, "score deterministically at the posterior mean (no sampling); refused for a checkpoint calibrated on sampled scores")
+	fs.BoolVar(&cfg.Mean, "mean", cfg.Mean, "score deterministically at the posterior mean (no sampling; needs -k 1 or 0); refused for a checkpoint calibrated on sampled scores")
 	fs.Int64Var(&cfg.MaxBody, "max-body", cfg.MaxBody, "largest request body, `bytes`")
 	fs.IntVar(&cfg.MaxRecords, "max-records", cfg.MaxRecords, "most records in one request")
 	if err := fs.Parse(args); err != nil {
@@ -96,6 +96,8 @@ Flags:
 		err = fmt.Errorf("-epochs %d: want >= 1", cfg.Epochs)
 	case cfg.K < 0:
 		err = fmt.Errorf("-k %d: want >= 1 (or 0: the checkpoint's)", cfg.K)
+	case cfg.Mean && cfg.K > 1:
+		err = fmt.Errorf("-k %d with -mean: the score at the posterior mean takes no samples, want -k 1", cfg.K)
 	case cfg.MaxBody < 1:
 		err = fmt.Errorf("-max-body %d: want >= 1", cfg.MaxBody)
 	case cfg.MaxRecords < 1:

@@ -689,7 +689,7 @@ func TestFlags(t *testing.T) {
 	if _, err := parseFlags([]string{"-h"}, &out); !errors.Is(err, flag.ErrHelp) || !strings.Contains(out.String(), "POST /score") {
 		t.Fatalf("-h: %v\n%s", err, out.String())
 	}
-	for _, args := range [][]string{{"-k", "-1"}, {"-epochs", "0"}, {"-max-body", "0"}, {"stray"}} {
+	for _, args := range [][]string{{"-k", "-1"}, {"-epochs", "0"}, {"-max-body", "0"}, {"stray"}, {"-mean", "-k", "4"}} {
 		if _, err := parseFlags(args, io.Discard); err == nil {
 			t.Errorf("%v accepted", args)
 		}

@@ -1,15 +1,22 @@
-// Command mnistbench trains the standard MLP VAE (784-400-20, ReLU,
-// Bernoulli likelihood, Adam with learning rate 1e-3, batch 100) on MNIST
-// binarised at pixel >= 128, the setting of the PyTorch reference in
-// ../shared/bench, and prints each epoch's wall time and train and test
-// negative ELBO, then the importance-weighted NLL estimate on the first 1000
-// test images. It is a benchmark, not an example.
+// Command mnistbench trains an MLP VAE on MNIST binarised at pixel >= 128
+// and prints each epoch's wall time and train and test negative ELBO, then
+// the importance-weighted NLL estimate on the first 1000 test images. It is
+// a benchmark, not an example.
 //
-//	go run ./internal/cmd/mnistbench -epochs 5 -threads 1
+// The default model is the one-stochastic-layer VAE of Burda, Grosse and
+// Salakhutdinov, "Importance Weighted Autoencoders" (ICLR 2016, section 5):
+// 784-200-200-50 with tanh, Bernoulli likelihood, Adam with learning rate
+// 1e-3, batch 100, the setting of the PyTorch reference in ../shared/bench.
+// The flags -hidden, -latent, -activation and -batch choose another; the
+// former default, 784-400-20 with ReLU, is
 //
-// Built with -tags openblas (cgo and Debian's libopenblas-dev) the graphs
-// run on OpenBLAS instead of gonum's pure Go BLAS; set OPENBLAS_NUM_THREADS
-// to match -threads when comparing.
+//	go run ./internal/cmd/mnistbench -epochs 5 -hidden 400 -latent 20 -activation relu
+//
+// -blas gonum runs the graphs on gonum's pure Go BLAS instead of the SDK's
+// engine (for before/after comparisons), -blas portable on the engine with
+// its portable Go kernels. Built with -tags openblas (cgo and Debian's
+// libopenblas-dev) the default is OpenBLAS; set OPENBLAS_NUM_THREADS to
+// match -threads when comparing.
 package main
 
 import (
@@ -21,10 +28,15 @@ import (
 	"os/signal"
 	"runtime"
 	"runtime/pprof"
+	"strconv"
+	"strings"
 	"time"
 
+	"gonum.org/v1/gonum/blas/gonum"
+	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
 
+	"lowerbound.dev/internal/gemm"
 	"lowerbound.dev/internal/mnist"
 	"lowerbound.dev/layers"
 	"lowerbound.dev/priors"
@@ -36,6 +48,9 @@ type summary struct {
 	Seed        uint64    `json:"seed"`
 	Threads     int       `json:"threads"`
 	Dtype       string    `json:"dtype"`
+	Model       string    `json:"model"`
+	Activation  string    `json:"activation"`
+	Batch       int       `json:"batch"`
 	Prior       string    `json:"prior"`
 	BLAS        string    `json:"blas"`
 	K           int       `json:"k"`
@@ -58,6 +73,12 @@ func main() {
 	prior := flag.String("prior", "standard", "prior over z: standard, mixture or vamp")
 	components := flag.Int("components", 50, "components of the mixture or pseudo-inputs of the VampPrior")
 	cpuProfile := flag.String("cpuprofile", "", "write a CPU profile of the whole run to this file")
+	var m modelFlags
+	flag.StringVar(&m.hidden, "hidden", "200,200", "hidden widths of the encoder, comma-separated (the decoder mirrors them)")
+	flag.IntVar(&m.latent, "latent", 50, "latent dimensions")
+	flag.StringVar(&m.activation, "activation", "tanh", "activation after every hidden layer: tanh, relu, ...")
+	flag.IntVar(&m.batch, "batch", 100, "records per training step")
+	flag.StringVar(&m.blas, "blas", "default", "matrix library: default (the build's), gonum (gonum's pure Go) or portable (the engine's Go kernels)")
 	flag.Parse()
 	if *cpuProfile != "" {
 		f, err := os.Create(*cpuProfile)
@@ -71,17 +92,66 @@ func main() {
 		}
 		defer pprof.StopCPUProfile()
 	}
-	if err := run(*epochs, *seed, *threads, *k, *dtype, *limit, *prior, *components, *jsonPath, *savePath); err != nil {
+	if err := run(m, *epochs, *seed, *threads, *k, *dtype, *limit, *prior, *components, *jsonPath, *savePath); err != nil {
 		pprof.StopCPUProfile()
 		fmt.Fprintln(os.Stderr, "mnistbench:", err)
 		os.Exit(1)
 	}
 }
 
-func run(epochs int, seed uint64, threads, k int, dtypeName string, limit int, priorName string, components int, jsonPath, savePath string) error {
+// modelFlags are the flags that choose the model, batch and BLAS.
+type modelFlags struct {
+	hidden     string
+	latent     int
+	activation string
+	batch      int
+	blas       string
+}
+
+// parseHidden reads "200,200" as []int{200, 200}.
+func parseHidden(s string) ([]int, error) {
+	var widths []int
+	for _, f := range strings.Split(s, ",") {
+		w, err := strconv.Atoi(strings.TrimSpace(f))
+		if err != nil || w < 1 {
+			return nil, fmt.Errorf("-hidden %q: width %q: want a positive integer", s, f)
+		}
+		widths = append(widths, w)
+	}
+	return widths, nil
+}
+
+func run(mf modelFlags, epochs int, seed uint64, threads, k int, dtypeName string, limit int, priorName string, components int, jsonPath, savePath string) error {
 	if threads < 1 {
 		return fmt.Errorf("-threads %d: want >= 1", threads)
 	}
+	hidden, err := parseHidden(mf.hidden)
+	if err != nil {
+		return err
+	}
+	if mf.latent < 1 {
+		return fmt.Errorf("-latent %d: want >= 1", mf.latent)
+	}
+	if mf.batch < 1 {
+		return fmt.Errorf("-batch %d: want >= 1", mf.batch)
+	}
+	blasName := vae.BLAS
+	switch mf.blas {
+	case "default":
+	case "gonum":
+		G.Use(gonum.Implementation{})
+		blasName = "gonum (pure Go)"
+	case "portable":
+		e, err := gemm.New(gemm.WithPortable())
+		if err != nil {
+			return err
+		}
+		G.Use(gemm.NewBLAS(e))
+		blasName = "lowerbound gemm, portable Go kernels"
+	default:
+		return fmt.Errorf("-blas %q: want default, gonum or portable", mf.blas)
+	}
+	modelName := fmt.Sprintf("784-%s-%d", strings.ReplaceAll(mf.hidden, ",", "-"), mf.latent)
 	runtime.GOMAXPROCS(threads)
 	var dt tensor.Dtype
 	switch dtypeName {
@@ -98,12 +168,12 @@ func run(epochs int, seed uint64, threads, k int, dtypeName string, limit int, p
 	if err != nil {
 		return err
 	}
-	cfg := vae.MLPConfig{Input: 784, Hidden: []int{400}, Latent: 20, Dtype: dt, Seed: seed}
+	cfg := vae.MLPConfig{Input: 784, Hidden: hidden, Latent: mf.latent, Activation: layers.Activation(mf.activation), Dtype: dt, Seed: seed}
 	switch priorName {
 	case "standard":
 	case "mixture":
 		cfg.MakePrior = func(layers.Layer, *layers.GaussianHead) (priors.Prior, error) {
-			return priors.NewMixture("prior", components, 20, priors.MixtureOptions{Dtype: dt, Seed: seed})
+			return priors.NewMixture("prior", components, mf.latent, priors.MixtureOptions{Dtype: dt, Seed: seed})
 		}
 	case "vamp":
 		cfg.MakePrior = func(enc layers.Layer, head *layers.GaussianHead) (priors.Prior, error) {
@@ -116,10 +186,10 @@ func run(epochs int, seed uint64, threads, k int, dtypeName string, limit int, p
 	if err != nil {
 		return err
 	}
-	fmt.Printf("lowerbound mnistbench: %s, %d thread(s), %s, prior %s, BLAS %s\n", dtypeName, threads, "784-400-20", priorName, vae.BLAS)
-	sum := summary{Epochs: epochs, Seed: seed, Threads: threads, Dtype: dtypeName, K: k, Prior: priorName, BLAS: vae.BLAS}
+	fmt.Printf("lowerbound mnistbench: %s, %d thread(s), %s %s, batch %d, prior %s, BLAS %s\n", dtypeName, threads, modelName, mf.activation, mf.batch, priorName, blasName)
+	sum := summary{Epochs: epochs, Seed: seed, Threads: threads, Dtype: dtypeName, K: k, Model: modelName, Activation: mf.activation, Batch: mf.batch, Prior: priorName, BLAS: blasName}
 	_, err = m.Train(ctx, train, vae.TrainConfig{
-		Epochs: epochs, BatchSize: 100, LearnRate: 1e-3, Seed: seed,
+		Epochs: epochs, BatchSize: mf.batch, LearnRate: 1e-3, Seed: seed,
 		OnEpoch: func(e vae.EpochInfo) error {
 			rep, err := m.Evaluate(ctx, test, vae.EvalOptions{K: 1, Seed: seed})
 			if err != nil {
