@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
+	"strconv"
 	"time"
 
 	"gorgonia.org/tensor"
@@ -19,53 +20,71 @@ import (
 
 // fleetSize is the invented fleet the demo model trains on.
 type fleetSize struct {
-	Stations, HistoryDays, ValDays int
-	Interval                       time.Duration
-	Hidden                         []int
+	Stations, HistoryDays, ValDays, CalDays int
+	Interval                                time.Duration
+	Missing                                 float64
+	Hidden                                  []int
 }
 
 // demoFleet is smaller than the telemetry example's so that the server
 // starts in seconds.
 func demoFleet() fleetSize {
-	return fleetSize{Stations: 6, HistoryDays: 10, ValDays: 2, Interval: 10 * time.Minute, Hidden: []int{64, 32}}
+	return fleetSize{Stations: 4, HistoryDays: 8, ValDays: 1, CalDays: 1, Interval: 10 * time.Minute, Missing: 0.02, Hidden: []int{64, 32}}
 }
 
-// trainDemo trains the telemetry example's model (conditional on the
-// station type, learned-sigma Gaussian likelihood) on the normal history
-// of an invented fleet and writes it with the telemetry metadata to
-// out/model.safetensors, whose path it returns. The threshold is the 99th
-// percentile of the validation scores.
-func trainDemo(ctx context.Context, out string, seed uint64, epochs int, size fleetSize) (string, error) {
+// demoK is the K the demo model is calibrated (and so served) with when
+// -k is not given: the telemetry example's default.
+const demoK = 16
+
+// trainDemo trains the kind of model the telemetry example trains
+// (conditional on the station type, mixed columns: Gaussian sensors with
+// learned sigmas, a categorical operating mode and a Poisson start count,
+// dropped-out readings skipped) on the normal history of an invented
+// fleet, calibrates its alarm threshold (false-alarm rate 1%) on held-out
+// days scored with K importance samples and the seed, and writes it with
+// its schema, standardizer, calibration, score settings and class names to
+// out/model.safetensors, whose path it returns.
+func trainDemo(ctx context.Context, out string, seed uint64, epochs, k int, size fleetSize) (string, error) {
 	if err := os.MkdirAll(out, 0o755); err != nil {
 		return "", err
 	}
 	fl, err := fleet.GenerateFleet(fleet.FleetConfig{Stations: size.Stations, HistoryDays: size.HistoryDays, TestDays: 1,
-		Interval: size.Interval, Seed: seed})
+		Interval: size.Interval, Seed: seed, Missing: size.Missing})
 	if err != nil {
 		return "", err
 	}
-	trainRaw, valRaw, _, err := fl.Sets(fleet.Start().AddDate(0, 0, size.HistoryDays-size.ValDays))
+	calFrom := fleet.Start().AddDate(0, 0, size.HistoryDays-size.CalDays)
+	valFrom := calFrom.AddDate(0, 0, -size.ValDays)
+	trainRecs, heldOut := fleet.SplitAt(fl.History, valFrom)
+	valRecs, calRecs := fleet.SplitAt(heldOut, calFrom)
+	schema := fleet.MixedSchema()
+	var sets [3]*dataset.Set
+	for i, recs := range [][]fleet.Record{trainRecs, valRecs, calRecs} {
+		if sets[i], err = fleet.ToMixedSet(recs); err != nil {
+			return "", err
+		}
+	}
+	z, err := dataset.FitStandardizerSchema(sets[0], schema)
 	if err != nil {
 		return "", err
 	}
-	z, err := dataset.FitStandardizer(trainRaw)
+	for i := range sets {
+		if sets[i], err = z.Apply(sets[i]); err != nil {
+			return "", err
+		}
+	}
+	train, val, cal := sets[0], sets[1], sets[2]
+	cols, err := vae.ColumnsFromSchema(schema, true)
 	if err != nil {
 		return "", err
 	}
-	train, err := z.Apply(trainRaw)
+	lik, err := losses.NewColumns("likelihood", cols, tensor.Float32)
 	if err != nil {
 		return "", err
 	}
-	val, err := z.Apply(valRaw)
-	if err != nil {
-		return "", err
-	}
-	lik, err := losses.NewLearnedGaussian("likelihood", fleet.NumSensors, tensor.Float32)
-	if err != nil {
-		return "", err
-	}
-	m, err := vae.NewMLP(vae.MLPConfig{Input: fleet.NumSensors, Hidden: size.Hidden, Latent: 4,
-		Classes: len(fleet.StationTypes()), Likelihood: lik, Seed: seed})
+	types := fleet.StationTypes()
+	m, err := vae.NewMLP(vae.MLPConfig{Input: fleet.NumColumns, Hidden: size.Hidden, Latent: 4,
+		Classes: len(types), Likelihood: lik, Seed: seed})
 	if err != nil {
 		return "", err
 	}
@@ -73,29 +92,33 @@ func trainDemo(ctx context.Context, out string, seed uint64, epochs int, size fl
 		Validation: val, RestoreBest: true}); err != nil {
 		return "", fmt.Errorf("training: %w", err)
 	}
-	valScores, err := m.Score(ctx, val, vae.ScoreOptions{K: 1, Seed: seed})
+	calScores, err := m.Score(ctx, cal, vae.ScoreOptions{K: k, Seed: seed})
 	if err != nil {
 		return "", err
 	}
-	cal, err := alarm.Calibrate(valScores, 0.01)
+	c, err := alarm.Calibrate(calScores, 0.01)
 	if err != nil {
 		return "", err
 	}
-	if err := alarm.Put(m, cal); err != nil {
+	if err := m.SetSchema(schema); err != nil {
 		return "", err
 	}
-	zJSON, err := json.Marshal(z)
-	if err != nil {
+	if err := m.SetStandardizer(z); err != nil {
 		return "", err
 	}
-	names, _ := json.Marshal(fleet.SensorNames())
+	if err := alarm.Put(m, c); err != nil {
+		return "", err
+	}
 	var typeNames []string
-	for _, t := range fleet.StationTypes() {
+	for _, t := range types {
 		typeNames = append(typeNames, t.Name)
 	}
-	types, _ := json.Marshal(typeNames)
-	for k, v := range map[string]string{extraStandardizer: string(zJSON), extraFeatures: string(names), extraTypes: string(types)} {
-		if err := m.SetExtra(k, v); err != nil {
+	names, err := json.Marshal(typeNames)
+	if err != nil {
+		return "", err
+	}
+	for key, v := range map[string]string{extraScoreK: strconv.Itoa(k), extraScoreSeed: strconv.FormatUint(seed, 10), extraLabels: string(names)} {
+		if err := m.SetExtra(key, v); err != nil {
 			return "", err
 		}
 	}

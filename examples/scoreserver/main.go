@@ -1,23 +1,3 @@
-// Command scoreserver is an HTTP scoring service for a checkpoint of the
-// telemetry example: POST /score takes one record or many in JSON (raw
-// sensor readings and the station type) and answers with their anomaly
-// scores; GET /healthz says which checkpoint it serves; GET /metrics has
-// request counts, latencies, scores and errors in the Prometheus text
-// format; POST /reload (or SIGHUP) swaps in the checkpoint file again
-// without dropping requests, keeping the old model when the new one does
-// not load. SIGINT or SIGTERM shuts it down gracefully.
-//
-// Without -model it first trains a small demo model on the invented fleet
-// of the telemetry example and serves that, so
-//
-//	go run ./examples/scoreserver
-//
-// works from a clean checkout. Then, for example:
-//
-//	curl -s localhost:8080/score -d '{"values":[120,2.2,6.6,45,44,70,1.6,1.6,1.1,60,30,2960],"label":"booster","columns":true}'
-//
-// The data is invented; the scores are a screening aid, not a protection
-// system.
 package main
 
 import (
@@ -43,14 +23,15 @@ type Config struct {
 	Out        string
 	Seed       uint64
 	Epochs     int
-	K          int
+	K          int // 0: the checkpoint's
+	SeedSet    bool
 	Mean       bool
 	MaxBody    int64
 	MaxRecords int
 }
 
 func defaultConfig() Config {
-	return Config{Addr: "127.0.0.1:8080", Out: filepath.Join("out", "scoreserver"), Seed: 1, Epochs: 8, K: 1,
+	return Config{Addr: "127.0.0.1:8080", Out: filepath.Join("out", "scoreserver"), Seed: 1, Epochs: 8,
 		MaxBody: 1 << 20, MaxRecords: 1000}
 }
 
@@ -78,12 +59,17 @@ func parseFlags(args []string, stderr io.Writer) (Config, error) {
 	fs.Usage = func() {
 		fmt.Fprint(fs.Output(), `Usage: scoreserver [flags]
 
-Serves anomaly scores of a telemetry checkpoint over HTTP:
-  POST /score    {"values":[...12 readings...],"label":"booster"} or {"records":[...]}; "columns":true adds per-sensor terms
-  GET  /healthz  the checkpoint served
+Serves anomaly scores of a checkpoint (the telemetry example's) over HTTP:
+  POST /score    {"values":{"flow_m3h":120,"mode":"normal","vib_x_mms":null,...},"label":"booster","key":7}
+                 or "values" as an array in column order, or {"records":[...]}; null or an absent
+                 column is a missing value; "columns":true adds each column's part of the score.
+                 Answers score, p_value and flagged (the checkpoint's alarm calibration).
+  GET  /healthz  the checkpoint served: columns, classes, score settings, calibration
   GET  /metrics  Prometheus metrics
   POST /reload   read the checkpoint file again (also on SIGHUP); a bad file keeps the old model
-Without -model, trains a small demo model on the invented fleet first and writes it to -out.
+Scores with the K and seed the checkpoint's calibration was scored with (metadata score.k,
+score.seed); a conflicting -k is refused. Without -model, trains a small demo model of the
+telemetry example's kind on an invented fleet first and writes it to -out.
 
 Flags:
 `)
@@ -92,23 +78,24 @@ Flags:
 	fs.StringVar(&cfg.Addr, "addr", cfg.Addr, "listen `address`")
 	fs.StringVar(&cfg.Model, "model", cfg.Model, "checkpoint `file` written by the telemetry example (empty: train a demo model)")
 	fs.StringVar(&cfg.Out, "out", cfg.Out, "`folder` for the demo model's checkpoint")
-	fs.Uint64Var(&cfg.Seed, "seed", cfg.Seed, "seed of the demo data and weights, and of the scoring noise")
+	fs.Uint64Var(&cfg.Seed, "seed", cfg.Seed, "seed of the demo data and weights, and of the scoring noise (default for scoring: the checkpoint's score.seed)")
 	fs.IntVar(&cfg.Epochs, "epochs", cfg.Epochs, "training epochs of the demo model")
-	fs.IntVar(&cfg.K, "k", cfg.K, "importance samples per score (1 scores by the negative ELBO)")
-	fs.BoolVar(&cfg.Mean, "mean", cfg.Mean, "score deterministically at the posterior mean (no sampling; needs -k 1)")
+	fs.IntVar(&cfg.K, "k", cfg.K, "importance samples per score (1 scores by the negative ELBO); 0: the checkpoint's score.k, else 1 (the demo model: 16). Must match a calibrated checkpoint's")
+	fs.BoolVar(&cfg.Mean, "mean", cfg.Mean, "score deterministically at the posterior mean (no sampling; needs -k 1 or 0); refused for a checkpoint calibrated on sampled scores")
 	fs.Int64Var(&cfg.MaxBody, "max-body", cfg.MaxBody, "largest request body, `bytes`")
 	fs.IntVar(&cfg.MaxRecords, "max-records", cfg.MaxRecords, "most records in one request")
 	if err := fs.Parse(args); err != nil {
 		return cfg, err
 	}
+	fs.Visit(func(f *flag.Flag) { cfg.SeedSet = cfg.SeedSet || f.Name == "seed" })
 	var err error
 	switch {
 	case fs.NArg() > 0:
 		err = fmt.Errorf("unexpected arguments %q", fs.Args())
 	case cfg.Epochs < 1:
 		err = fmt.Errorf("-epochs %d: want >= 1", cfg.Epochs)
-	case cfg.K < 1:
-		err = fmt.Errorf("-k %d: want >= 1", cfg.K)
+	case cfg.K < 0:
+		err = fmt.Errorf("-k %d: want >= 1 (or 0: the checkpoint's)", cfg.K)
 	case cfg.Mean && cfg.K > 1:
 		err = fmt.Errorf("-k %d with -mean: the score at the posterior mean takes no samples, want -k 1", cfg.K)
 	case cfg.MaxBody < 1:
@@ -133,11 +120,15 @@ func serve(ctx context.Context, cfg Config, log *slog.Logger, ready chan<- strin
 	if path == "" {
 		log.Info("no -model: training the demo model on the invented fleet", "out", cfg.Out, "epochs", cfg.Epochs)
 		var err error
-		if path, err = trainDemo(ctx, cfg.Out, cfg.Seed, cfg.Epochs, demoFleet()); err != nil {
+		k := cfg.K
+		if k == 0 {
+			k = demoK
+		}
+		if path, err = trainDemo(ctx, cfg.Out, cfg.Seed, cfg.Epochs, k, demoFleet()); err != nil {
 			return fmt.Errorf("demo model: %w", err)
 		}
 	}
-	s, err := newServer(path, Options{K: cfg.K, Seed: cfg.Seed, Mean: cfg.Mean, MaxBody: cfg.MaxBody, MaxRecords: cfg.MaxRecords, Log: log})
+	s, err := newServer(path, Options{K: cfg.K, Seed: cfg.Seed, SeedSet: cfg.SeedSet, Mean: cfg.Mean, MaxBody: cfg.MaxBody, MaxRecords: cfg.MaxRecords, Log: log})
 	if err != nil {
 		return err
 	}
@@ -164,7 +155,8 @@ func serve(ctx context.Context, cfg Config, log *slog.Logger, ready chan<- strin
 
 	errc := make(chan error, 1)
 	go func() { errc <- srv.Serve(ln) }()
-	log.Info("serving", "addr", ln.Addr().String(), "model", path)
+	l := s.cur.Load()
+	log.Info("serving", "addr", ln.Addr().String(), "model", path, "k", l.score.K, "seed", l.score.Seed, "score_from", l.score.From, "lean", l.lean)
 	if ready != nil {
 		ready <- ln.Addr().String()
 	}

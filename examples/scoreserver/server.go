@@ -1,6 +1,8 @@
 package main
 
 import (
+	"bytes"
+	"context"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -8,6 +10,7 @@ import (
 	"log/slog"
 	"math"
 	"net/http"
+	"slices"
 	"strconv"
 	"strings"
 	"sync"
@@ -19,26 +22,19 @@ import (
 
 	"lowerbound.dev/layers"
 	"lowerbound.dev/vae"
-	"lowerbound.dev/vae/alarm"
 	"lowerbound.dev/vae/dataset"
-)
-
-// Checkpoint metadata keys, the telemetry example's: the standardisation
-// of the raw readings, the feature (sensor) names, the label (station
-// type) names. The alarm threshold is the vae/alarm calibration stored
-// under alarm.MetadataKey, when the checkpoint has one.
-const (
-	extraStandardizer = "telemetry.standardizer"
-	extraFeatures     = "telemetry.features"
-	extraTypes        = "telemetry.station_types"
 )
 
 // Options configures a server.
 type Options struct {
-	// K, Seed and Mean choose the score (see vae.ScorerOptions).
-	K    int
-	Seed uint64
-	Mean bool
+	// K, Seed and Mean choose the score (see vae.ScorerOptions). K of 0
+	// means the checkpoint's (metadata score.k), else 1; a K that
+	// conflicts with a calibrated checkpoint's is an error. Seed is used
+	// when SeedSet or when the checkpoint records none (score.seed).
+	K       int
+	Seed    uint64
+	SeedSet bool
+	Mean    bool
 	// MaxBody bounds a request body, bytes; MaxRecords the records in one
 	// request.
 	MaxBody    int64
@@ -46,64 +42,6 @@ type Options struct {
 	// Log receives one line per reload and per failed request; nil
 	// discards.
 	Log *slog.Logger
-}
-
-// loaded is one checkpoint ready to serve. It is never changed after
-// loading: a reload builds a new one and swaps the pointer.
-type loaded struct {
-	path      string
-	model     *vae.Model
-	scorer    *vae.Scorer
-	z         dataset.Standardizer
-	features  []string
-	labels    []string // class names of a conditional model
-	threshold float64  // NaN when the checkpoint has none
-	at        time.Time
-}
-
-// load reads a checkpoint and what the scoring needs from its metadata.
-func load(path string, opt Options) (*loaded, error) {
-	m, err := vae.Load(path)
-	if err != nil {
-		return nil, err
-	}
-	extra := m.Extra()
-	l := &loaded{path: path, model: m, threshold: math.NaN(), at: time.Now()}
-	if err := json.Unmarshal([]byte(extra[extraStandardizer]), &l.z); err != nil {
-		return nil, fmt.Errorf("%s: metadata %s: %w", path, extraStandardizer, err)
-	}
-	if err := l.z.Validate(); err != nil {
-		return nil, fmt.Errorf("%s: metadata %s: %w", path, extraStandardizer, err)
-	}
-	if len(l.z.Mean) != m.Features() {
-		return nil, fmt.Errorf("%s: standardisation has %d features, the model %d", path, len(l.z.Mean), m.Features())
-	}
-	if s, ok := extra[extraFeatures]; ok {
-		if err := json.Unmarshal([]byte(s), &l.features); err != nil || len(l.features) != m.Features() {
-			return nil, fmt.Errorf("%s: metadata %s: want %d names (%v)", path, extraFeatures, m.Features(), err)
-		}
-	} else {
-		for j := 0; j < m.Features(); j++ {
-			l.features = append(l.features, "feature_"+strconv.Itoa(j))
-		}
-	}
-	if m.Classes() > 0 {
-		if s, ok := extra[extraTypes]; ok {
-			if err := json.Unmarshal([]byte(s), &l.labels); err != nil || len(l.labels) != m.Classes() {
-				return nil, fmt.Errorf("%s: metadata %s: want %d names (%v)", path, extraTypes, m.Classes(), err)
-			}
-		}
-	}
-	switch cal, err := alarm.Get(m); {
-	case err == nil:
-		l.threshold = cal.Threshold()
-	case !errors.Is(err, alarm.ErrNoCalibration):
-		return nil, fmt.Errorf("%s: %w", path, err)
-	}
-	if l.scorer, err = m.NewScorer(vae.ScorerOptions{K: opt.K, Seed: opt.Seed, Mean: opt.Mean}); err != nil {
-		return nil, err
-	}
-	return l, nil
 }
 
 // server serves one model at a time and swaps it atomically on reload.
@@ -118,6 +56,7 @@ type server struct {
 	scores   prometheus.Histogram
 	errs     *prometheus.CounterVec
 	records  prometheus.Counter
+	flagged  prometheus.Counter
 	reloads  *prometheus.CounterVec
 }
 
@@ -132,7 +71,7 @@ func newServer(path string, opt Options) (*server, error) {
 	if opt.Log == nil {
 		opt.Log = slog.New(slog.NewTextHandler(io.Discard, nil))
 	}
-	l, err := load(path, opt)
+	l, err := load(context.Background(), path, opt, opt.Log)
 	if err != nil {
 		return nil, err
 	}
@@ -151,7 +90,9 @@ func newServer(path string, opt Options) (*server, error) {
 	s.records = prometheus.NewCounter(prometheus.CounterOpts{Name: "scoreserver_records_total", Help: "Records scored."})
 	s.reloads = prometheus.NewCounterVec(prometheus.CounterOpts{Name: "scoreserver_reloads_total",
 		Help: "Checkpoint reloads by result (ok, failed)."}, []string{"result"})
-	s.reg.MustRegister(s.requests, s.latency, s.scores, s.errs, s.records, s.reloads)
+	s.flagged = prometheus.NewCounter(prometheus.CounterOpts{Name: "scoreserver_flagged_total",
+		Help: "Records scored above the checkpoint's alarm threshold."})
+	s.reg.MustRegister(s.requests, s.latency, s.scores, s.errs, s.records, s.flagged, s.reloads)
 	return s, nil
 }
 
@@ -161,7 +102,7 @@ func newServer(path string, opt Options) (*server, error) {
 func (s *server) reload() error {
 	s.reloadMu.Lock()
 	defer s.reloadMu.Unlock()
-	l, err := load(s.path, s.opt)
+	l, err := load(context.Background(), s.path, s.opt, s.opt.Log)
 	if err != nil {
 		s.reloads.WithLabelValues("failed").Inc()
 		s.opt.Log.Error("reload failed; keeping the current model", "path", s.path, "err", err)
@@ -229,18 +170,23 @@ func writeJSON(w http.ResponseWriter, code int, v any) {
 	_ = json.NewEncoder(w).Encode(v)
 }
 
-// Record is one record of a request: the raw readings in the model's
-// feature order, the label of a conditional model (its name or its index)
-// and an optional noise key (for example a reading's id), which makes its
-// score the same in every request.
+// Record is one record of a request. Values holds its raw values, either
+// as an array in the model's column order or as an object keyed by column
+// name; a value is a number, a category's name (or index) for a
+// categorical column, or null for a missing value. In the object form an
+// absent column is missing too. Missing values are accepted only when the
+// model's likelihood is a losses.Columns. Label is the class of a
+// conditional model (its name or its index); Key an optional noise key
+// (for example a reading's id), which makes the record's score the same
+// in every request.
 type Record struct {
-	Values []float64       `json:"values"`
+	Values json.RawMessage `json:"values"`
 	Label  json.RawMessage `json:"label,omitempty"`
 	Key    *uint64         `json:"key,omitempty"`
 }
 
 // ScoreRequest is the body of POST /score: either one record's fields at
-// the top level, or many under "records". Columns asks for each feature's
+// the top level, or many under "records". Columns asks for each column's
 // part of the reconstruction term.
 type ScoreRequest struct {
 	Record
@@ -251,16 +197,25 @@ type ScoreRequest struct {
 // Scored is the result for one record.
 type Scored struct {
 	Score float64 `json:"score"`
-	// Flagged is score > the checkpoint's threshold; absent when it has
-	// none.
-	Flagged *bool `json:"flagged,omitempty"`
-	// Columns maps feature name to -log p(x_j|z), when asked.
+	// Flagged is score > the checkpoint's threshold and PValue the
+	// conformal p-value of the score against the calibration scores
+	// (alarm.Calibration.PValue); both absent when the checkpoint has no
+	// calibration.
+	Flagged *bool    `json:"flagged,omitempty"`
+	PValue  *float64 `json:"p_value,omitempty"`
+	// Observed counts the record's non-missing values, for a model that
+	// accepts missing values: the score is over the observed values only,
+	// so compare records with the same count.
+	Observed *int `json:"observed,omitempty"`
+	// Columns maps column name to its part of the reconstruction term,
+	// -log p(x_j|z) (0 for a missing value), when asked.
 	Columns map[string]float64 `json:"columns,omitempty"`
 }
 
 // ScoreResponse is the answer to POST /score.
 type ScoreResponse struct {
 	Model     string   `json:"model"`
+	K         int      `json:"k"`
 	Threshold *float64 `json:"threshold,omitempty"`
 	Scores    []Scored `json:"scores"`
 }
@@ -292,8 +247,8 @@ func (s *server) handleScore(w http.ResponseWriter, r *http.Request) {
 			return
 		}
 		recs = []Record{req.Record}
-	} else if req.Values != nil {
-		s.fail(w, bad("malformed_json", `give either "values" (one record) or "records", not both`))
+	} else if req.Values != nil || req.Label != nil || req.Key != nil {
+		s.fail(w, bad("malformed_json", `give either one record ("values", "label", "key") or "records", not both`))
 		return
 	}
 	if len(recs) == 0 {
@@ -310,35 +265,31 @@ func (s *server) handleScore(w http.ResponseWriter, r *http.Request) {
 		s.fail(w, rerr)
 		return
 	}
-	resp := ScoreResponse{Model: l.path, Scores: out}
-	if !math.IsNaN(l.threshold) {
-		th := l.threshold
+	resp := ScoreResponse{Model: l.path, K: l.score.K, Scores: out}
+	if l.cal != nil {
+		th := l.cal.Threshold()
 		resp.Threshold = &th
 	}
 	writeJSON(w, http.StatusOK, resp)
 }
 
-// score checks, standardises and scores the records.
+// score reads, checks, standardises and scores the records.
 func (s *server) score(r *http.Request, l *loaded, recs []Record, columns bool) ([]Scored, *requestError) {
-	f := l.model.Features()
+	f := len(l.cols)
 	n := len(recs)
-	x := make([]float64, 0, n*f)
+	x := make([]float64, n*f)
+	observed := make([]int, n)
 	var labels []int
 	if l.model.Classes() > 0 {
 		labels = make([]int, n)
 	}
 	var keys []uint64
 	for i, rec := range recs {
-		if len(rec.Values) != f {
-			return nil, bad("feature_count", "record %d: %d values, the model wants %d (%s)", i, len(rec.Values), f, strings.Join(l.features, ", "))
+		nobs, rerr := l.values(i, rec.Values, x[i*f:(i+1)*f])
+		if rerr != nil {
+			return nil, rerr
 		}
-		for j, v := range rec.Values {
-			z := (v - l.z.Mean[j]) / l.z.Std[j]
-			if math.IsNaN(z) || math.IsInf(z, 0) || math.IsInf(float64(float32(z)), 0) {
-				return nil, bad("non_finite", "record %d, feature %d (%s): %v is out of range", i, j, l.features[j], v)
-			}
-			x = append(x, z)
-		}
+		observed[i] = nobs
 		if labels != nil {
 			lab, err := l.label(rec.Label)
 			if err != nil {
@@ -360,17 +311,28 @@ func (s *server) score(r *http.Request, l *loaded, recs []Record, columns bool) 
 			return nil, bad("key", "record %d has no key and record 0 has one: give every record a key or none", i)
 		}
 	}
-	scores := make([]float64, n)
-	var cols []float64
-	if columns {
-		cols = make([]float64, n*f)
+	if columns && !l.lean && l.mixed == nil {
+		return nil, bad("columns", "per-column terms: the model is scored through its graphs (%s) and its likelihood is not a losses.Columns; ask without \"columns\"", l.why)
 	}
-	if err := l.scorer.Score(r.Context(), scores, vae.Records{X: x, Labels: labels, Keys: keys}, cols); err != nil {
+	var scores, cols []float64
+	var err error
+	if l.lean {
+		scores = make([]float64, n)
+		if columns {
+			cols = make([]float64, n*f)
+		}
+		err = l.scorer.Score(r.Context(), scores, vae.Records{X: x, Labels: labels, Keys: keys}, cols)
+	} else {
+		scores, cols, err = l.graphScore(r.Context(), x, labels, keys, columns)
+	}
+	if err != nil {
 		switch {
 		case errors.Is(err, vae.ErrLabel):
 			return nil, bad("label", "%v", err)
-		case errors.Is(err, layers.ErrInvalidArgument):
-			return nil, bad("non_finite", "%v", err)
+		case errors.Is(err, layers.ErrInvalidArgument), errors.Is(err, dataset.ErrInvalidData):
+			return nil, bad("bad_value", "%v", err)
+		case r.Context().Err() != nil:
+			return nil, &requestError{code: 499, kind: "cancelled", msg: "request cancelled"}
 		}
 		s.opt.Log.Error("scoring failed", "err", err)
 		return nil, &requestError{code: http.StatusInternalServerError, kind: "internal", msg: "scoring failed: " + err.Error()}
@@ -379,19 +341,162 @@ func (s *server) score(r *http.Request, l *loaded, recs []Record, columns bool) 
 	for i, sc := range scores {
 		out[i].Score = sc
 		s.scores.Observe(sc)
-		if !math.IsNaN(l.threshold) {
-			fl := sc > l.threshold
-			out[i].Flagged = &fl
+		if l.cal != nil {
+			p, err := l.cal.PValue(sc)
+			if err != nil {
+				return nil, &requestError{code: http.StatusInternalServerError, kind: "internal", msg: fmt.Sprintf("record %d: p-value: %v", i, err)}
+			}
+			fl := sc > l.cal.Threshold()
+			out[i].Flagged, out[i].PValue = &fl, &p
+			if fl {
+				s.flagged.Inc()
+			}
+		}
+		if l.missingOK() {
+			out[i].Observed = &observed[i]
 		}
 		if cols != nil {
 			out[i].Columns = make(map[string]float64, f)
-			for j, name := range l.features {
-				out[i].Columns[name] = cols[i*f+j]
+			for j, c := range l.cols {
+				v := cols[i*f+j]
+				if v == 0 {
+					v = 0 // not -0 (a missing value's term)
+				}
+				out[i].Columns[c.Name] = v
 			}
 		}
 	}
 	s.records.Add(float64(n))
 	return out, nil
+}
+
+// values reads record i's raw values (an array in column order or an
+// object keyed by column name) into dst as the model's inputs:
+// standardised, categories as their index, NaN where missing. It returns
+// the number of observed values.
+func (l *loaded) values(i int, raw json.RawMessage, dst []float64) (int, *requestError) {
+	f := len(l.cols)
+	raw = bytes.TrimSpace(raw)
+	switch {
+	case len(raw) == 0 || bytes.Equal(raw, []byte("null")):
+		return 0, bad("malformed_json", `record %d: no "values"`, i)
+	case raw[0] == '[':
+		var elems []json.RawMessage
+		if err := json.Unmarshal(raw, &elems); err != nil {
+			return 0, bad("malformed_json", "record %d: values: %v", i, err)
+		}
+		if len(elems) != f {
+			return 0, bad("feature_count", "record %d: %d values, the model wants %d (%s; null for a missing one)", i, len(elems), f, l.columnNames())
+		}
+		for j, e := range elems {
+			if rerr := l.value(i, j, e, &dst[j]); rerr != nil {
+				return 0, rerr
+			}
+		}
+	case raw[0] == '{':
+		var fields map[string]json.RawMessage
+		if err := json.Unmarshal(raw, &fields); err != nil {
+			return 0, bad("malformed_json", "record %d: values: %v", i, err)
+		}
+		for j := range dst {
+			dst[j] = math.NaN()
+		}
+		names := make([]string, 0, len(fields))
+		for name := range fields {
+			names = append(names, name)
+		}
+		slices.Sort(names) // the first unknown name, whatever the map order
+		for _, name := range names {
+			j, ok := l.byName[name]
+			if !ok {
+				return 0, bad("unknown_column", "record %d: unknown column %q (the model's columns: %s)", i, name, l.columnNames())
+			}
+			if rerr := l.value(i, j, fields[name], &dst[j]); rerr != nil {
+				return 0, rerr
+			}
+		}
+	default:
+		return 0, bad("malformed_json", "record %d: values: want an array in column order or an object keyed by column name", i)
+	}
+	nobs := 0
+	for j, v := range dst {
+		if !math.IsNaN(v) {
+			nobs++
+			continue
+		}
+		if !l.missingOK() {
+			return 0, bad("missing", "record %d, column %q: missing; this model (likelihood %T) needs every column", i, l.cols[j].Name, l.model.Likelihood())
+		}
+	}
+	if nobs == 0 {
+		return 0, bad("missing", "record %d: every column is missing", i)
+	}
+	return nobs, nil
+}
+
+// value reads one raw value of record i, column j.
+func (l *loaded) value(i, j int, raw json.RawMessage, dst *float64) *requestError {
+	c := l.cols[j]
+	where := fmt.Sprintf("record %d, column %q", i, c.Name)
+	raw = bytes.TrimSpace(raw)
+	if len(raw) == 0 {
+		return bad("malformed_json", "%s: empty value", where)
+	}
+	var v float64
+	switch raw[0] {
+	case 'n':
+		*dst = math.NaN() // null: missing
+		return nil
+	case '"':
+		var name string
+		if err := json.Unmarshal(raw, &name); err != nil {
+			return bad("malformed_json", "%s: %v", where, err)
+		}
+		if c.Kind != dataset.KindCategorical {
+			return bad("bad_value", "%s: %q: a %s column takes a number (or null)", where, name, c.Kind)
+		}
+		k := c.CategoryIndex(name)
+		if k < 0 {
+			return bad("category", "%s: unknown category %q (want one of %s)", where, name, quoteAll(c.Categories))
+		}
+		*dst = float64(k)
+		return nil
+	case 't', 'f', '[', '{':
+		return bad("bad_value", "%s: %s: want a number%s or null", where, raw, map[bool]string{true: " or a category name", false: ""}[c.Kind == dataset.KindCategorical])
+	}
+	v, err := strconv.ParseFloat(string(raw), 64)
+	if err != nil {
+		if errors.Is(err, strconv.ErrRange) {
+			return bad("non_finite", "%s: %s is out of range", where, raw)
+		}
+		return bad("malformed_json", "%s: %s is not a number", where, raw)
+	}
+	if c.Kind == dataset.KindCategorical {
+		if v < 0 || v != math.Floor(v) || v >= float64(len(c.Categories)) {
+			return bad("category", "%s: %v is not a category (want one of %s, or an index 0..%d)", where, v, quoteAll(c.Categories), len(c.Categories)-1)
+		}
+		*dst = v
+		return nil
+	}
+	z := (v - c.mean) / c.std
+	if math.IsNaN(z) || math.IsInf(z, 0) || l.f32 && math.IsInf(float64(float32(z)), 0) {
+		return bad("non_finite", "%s: %v is out of range", where, v)
+	}
+	if l.mixed != nil {
+		if msg := l.mixed.CheckValue(j, z); msg != "" {
+			return bad("bad_value", "%s: %v %s", where, v, msg)
+		}
+	}
+	*dst = z
+	return nil
+}
+
+func quoteAll(xs []string) string {
+	q := make([]string, len(xs))
+	for i, x := range xs {
+		q[i] = strconv.Quote(x)
+	}
+	return strings.Join(q, ", ")
 }
 
 // label reads a label given as a class name or index.
@@ -419,26 +524,62 @@ func (l *loaded) labelNames() string {
 	if len(l.labels) == 0 {
 		return fmt.Sprintf("0..%d", l.model.Classes()-1)
 	}
-	return strings.Join(l.labels, ", ") + fmt.Sprintf(" or 0..%d", l.model.Classes()-1)
+	return quoteAll(l.labels) + fmt.Sprintf(" or 0..%d", l.model.Classes()-1)
+}
+
+// HealthColumn describes one column of the served model's records.
+type HealthColumn struct {
+	Name       string   `json:"name"`
+	Kind       string   `json:"kind"`
+	Categories []string `json:"categories,omitempty"`
+	// Mean and Std are the standardisation of a real column (the
+	// training mean and standard deviation in raw units).
+	Mean float64 `json:"mean"`
+	Std  float64 `json:"std"`
+}
+
+// HealthCalibration summarises the checkpoint's alarm calibration.
+type HealthCalibration struct {
+	Threshold float64 `json:"threshold"`
+	Alpha     float64 `json:"alpha"`
+	N         int     `json:"n"`
 }
 
 // Health is the answer to GET /healthz.
 type Health struct {
-	Status   string   `json:"status"`
-	Model    string   `json:"model"`
-	Loaded   string   `json:"loaded"`
-	Features []string `json:"features"`
-	Labels   []string `json:"labels,omitempty"`
-	// Means are the training means of the raw features: a typical record.
-	Means []float64 `json:"means"`
-	Lean  bool      `json:"lean"`
+	Status  string         `json:"status"`
+	Model   string         `json:"model"`
+	Loaded  string         `json:"loaded"`
+	Columns []HealthColumn `json:"columns"`
+	Labels  []string       `json:"labels,omitempty"`
+	// Classes is the number of classes of a conditional model.
+	Classes int `json:"classes,omitempty"`
+	// Missing says whether records may have missing values.
+	Missing bool `json:"missing"`
+	// Example is a record every column accepts, in column order: each
+	// real column at its training mean. It shows the format; it is not a
+	// normal record (the means of sensors that move together rarely occur
+	// together), so it may well score above the threshold.
+	Example     []any              `json:"example"`
+	Score       scoring            `json:"score"`
+	Calibration *HealthCalibration `json:"calibration,omitempty"`
+	// Lean is true when the lean Scorer serves the requests, false when
+	// Model.Score does (Why says why).
+	Lean bool   `json:"lean"`
+	Why  string `json:"why,omitempty"`
 }
 
 func (s *server) handleHealth(w http.ResponseWriter, r *http.Request) {
 	l := s.cur.Load()
-	lean, _ := l.scorer.Lean()
-	writeJSON(w, http.StatusOK, Health{Status: "ok", Model: l.path, Loaded: l.at.UTC().Format(time.RFC3339),
-		Features: l.features, Labels: l.labels, Means: l.z.Mean, Lean: lean})
+	h := Health{Status: "ok", Model: l.path, Loaded: l.at.UTC().Format(time.RFC3339), Labels: l.labels,
+		Classes: l.model.Classes(), Missing: l.missingOK(), Example: l.example, Score: l.score, Lean: l.lean, Why: l.why}
+	for _, c := range l.cols {
+		h.Columns = append(h.Columns, HealthColumn{Name: c.Name, Kind: c.Kind, Categories: c.Categories, Mean: c.mean, Std: c.std})
+	}
+	if l.cal != nil {
+		h.Calibration = &HealthCalibration{Threshold: l.cal.Threshold(), Alpha: l.cal.Alpha(), N: l.cal.N()}
+	}
+	writeJSON(w, http.StatusOK, h)
 }
 
 func (s *server) handleReload(w http.ResponseWriter, r *http.Request) {

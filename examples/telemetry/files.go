@@ -145,6 +145,9 @@ func runFiles(ctx context.Context, cfg Config) (FilesResult, error) {
 	if err := alarm.Put(m, res.Calibration); err != nil {
 		return res, err
 	}
+	if err := putScoreOptions(m, cfg.K, cfg.Seed); err != nil {
+		return res, err
+	}
 	res.Checkpoint = filepath.Join(cfg.Out, "model.safetensors")
 	if err := m.Save(res.Checkpoint); err != nil {
 		return res, err

@@ -102,6 +102,11 @@ func TestRunSmoke(t *testing.T) {
 	if sc.cal.Threshold() != res.Threshold || !slices.Equal(sc.cal.Scores(), res.Calibration.Scores()) {
 		t.Errorf("checkpoint threshold %v, run used %v (or the calibration scores differ)", sc.cal.Threshold(), res.Threshold)
 	}
+	// The checkpoint records the K and seed the calibration was scored
+	// with, so that a scoring service scores the same way.
+	if ex := sc.model.Extra(); ex[extraScoreK] != strconv.Itoa(cfg.K) || ex[extraScoreSeed] != strconv.FormatUint(cfg.Seed, 10) {
+		t.Errorf("checkpoint score settings %q=%q, %q=%q; want K %d, seed %d", extraScoreK, ex[extraScoreK], extraScoreSeed, ex[extraScoreSeed], cfg.K, cfg.Seed)
+	}
 	// The threshold is the k-th smallest of the n calibration scores, k =
 	// ceil((n+1)(1-alpha)) (split conformal; Angelopoulos and Bates 2021):
 	// at most n-k scores lie above it and at least n-k+1 at or above it.

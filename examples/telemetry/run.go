@@ -36,7 +36,21 @@ const (
 	extraStandardizer = "telemetry.standardizer" // JSON of dataset.Standardizer
 	extraFeatures     = "telemetry.features"     // JSON list of sensor names
 	extraTypes        = "telemetry.station_types"
+	// The score settings the calibration scores were computed with
+	// (decimal strings): a threshold calibrated at one K is not valid at
+	// another, so a scoring service must score with the same K.
+	extraScoreK    = "score.k"
+	extraScoreSeed = "score.seed"
 )
+
+// putScoreOptions records in m's metadata the K and seed the alarm
+// calibration was scored with.
+func putScoreOptions(m *vae.Model, k int, seed uint64) error {
+	if err := m.SetExtra(extraScoreK, strconv.Itoa(k)); err != nil {
+		return err
+	}
+	return m.SetExtra(extraScoreSeed, strconv.FormatUint(seed, 10))
+}
 
 // Disclaimer is printed by the program and stated in its documentation.
 const Disclaimer = "The scores are a screening aid, not a protection system: alarms, trips and inspections follow the site's own procedures, local codes and qualified staff."
@@ -427,6 +441,9 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		return res, err
 	}
 	if err := alarm.Put(m, res.Calibration); err != nil {
+		return res, err
+	}
+	if err := putScoreOptions(m, cfg.K, cfg.Seed); err != nil {
 		return res, err
 	}
 	res.Checkpoint = filepath.Join(cfg.Out, "model.safetensors")

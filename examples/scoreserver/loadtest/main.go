@@ -1,7 +1,9 @@
 // Command loadtest sends single-record scoring requests to a scoreserver on
 // this machine and reports the throughput and the latency percentiles the
-// clients saw. It talks to loopback addresses only and stops after -n
-// requests or -duration, whichever comes first.
+// clients saw. It reads the served model's columns and example record from
+// GET /healthz, so it works with any checkpoint the server loads. It talks
+// to loopback addresses only and stops after -n requests or -duration,
+// whichever comes first.
 //
 //	go run ./examples/scoreserver &          # serves on 127.0.0.1:8080
 //	go run ./examples/scoreserver/loadtest -n 20000 -c 8
@@ -28,9 +30,14 @@ import (
 
 // health is the part of GET /healthz the load test needs.
 type health struct {
-	Features []string  `json:"features"`
-	Labels   []string  `json:"labels"`
-	Means    []float64 `json:"means"`
+	Columns []struct {
+		Name string  `json:"name"`
+		Kind string  `json:"kind"`
+		Std  float64 `json:"std"`
+	} `json:"columns"`
+	Labels  []string `json:"labels"`
+	Classes int      `json:"classes"`
+	Example []any    `json:"example"`
 }
 
 // Result is what a run measured.
@@ -95,21 +102,29 @@ func run(ctx context.Context, base string, n, c int, d time.Duration, seed uint6
 	if err != nil {
 		return Result{}, fmt.Errorf("healthz: %w", err)
 	}
-	if len(h.Means) != len(h.Features) || len(h.Means) == 0 {
-		return Result{}, fmt.Errorf("healthz: %d features, %d means", len(h.Features), len(h.Means))
+	if len(h.Example) != len(h.Columns) || len(h.Example) == 0 {
+		return Result{}, fmt.Errorf("healthz: %d columns, an example of %d values", len(h.Columns), len(h.Example))
 	}
-	// 256 request bodies: the training means, each reading moved by up
-	// to 2%, under the labels in turn.
+	// 256 request bodies: the server's example record (the training means
+	// of the real columns) with each real value moved by up to 0.2
+	// standard deviations, under the classes in turn. They measure the
+	// cost of a request, not detection: many of them score above the
+	// threshold.
 	rng := rand.New(rand.NewPCG(seed, 7))
 	bodies := make([][]byte, 256)
 	for i := range bodies {
-		v := make([]float64, len(h.Means))
-		for j, m := range h.Means {
-			v[j] = m * (1 + 0.02*(2*rng.Float64()-1))
+		v := slices.Clone(h.Example)
+		for j, c := range h.Columns {
+			if x, ok := v[j].(float64); ok && c.Kind == "real" {
+				v[j] = x + 0.2*c.Std*(2*rng.Float64()-1)
+			}
 		}
 		req := map[string]any{"values": v, "key": i}
-		if len(h.Labels) > 0 {
+		switch {
+		case len(h.Labels) > 0:
 			req["label"] = h.Labels[i%len(h.Labels)]
+		case h.Classes > 0:
+			req["label"] = i % h.Classes
 		}
 		if bodies[i], err = json.Marshal(req); err != nil {
 			return Result{}, err

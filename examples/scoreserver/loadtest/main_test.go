@@ -30,11 +30,18 @@ func TestRunCounts(t *testing.T) {
 	var n atomic.Int64
 	ts := httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
 		if r.URL.Path == "/healthz" {
-			_ = json.NewEncoder(w).Encode(health{Features: []string{"a", "b"}, Labels: []string{"x"}, Means: []float64{1, 2}})
+			_, _ = w.Write([]byte(`{"columns":[{"name":"a","kind":"real","mean":1,"std":0.5},{"name":"m","kind":"categorical","categories":["u","v"]}],"labels":["x"],"classes":1,"example":[1,"v"]}`))
 			return
 		}
 		var req map[string]any
 		if err := json.NewDecoder(r.Body).Decode(&req); err != nil || req["label"] != "x" {
+			http.Error(w, "bad", 400)
+			return
+		}
+		// The real value moves by at most 0.2 standard deviations; the
+		// category stays.
+		v := req["values"].([]any)
+		if a := v[0].(float64); a < 0.9 || a > 1.1 || a == 1 || v[1] != "v" {
 			http.Error(w, "bad", 400)
 			return
 		}
