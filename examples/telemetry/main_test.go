@@ -104,6 +104,9 @@ func TestRunSmoke(t *testing.T) {
 	}
 	// The checkpoint records the K and seed the calibration was scored
 	// with, so that a scoring service scores the same way.
+	if ex := sc.model.Extra(); ex[extraLabels] != `["booster","district","transfer"]` {
+		t.Errorf("checkpoint %q = %q, want the three station types", extraLabels, ex[extraLabels])
+	}
 	if ex := sc.model.Extra(); ex[extraScoreK] != strconv.Itoa(cfg.K) || ex[extraScoreSeed] != strconv.FormatUint(cfg.Seed, 10) {
 		t.Errorf("checkpoint score settings %q=%q, %q=%q; want K %d, seed %d", extraScoreK, ex[extraScoreK], extraScoreSeed, ex[extraScoreSeed], cfg.K, cfg.Seed)
 	}

@@ -33,9 +33,10 @@ import (
 // Checkpoint metadata keys written with Model.SetExtra. The alarm
 // calibration goes under alarm.MetadataKey (alarm.Put).
 const (
-	extraStandardizer = "telemetry.standardizer" // JSON of dataset.Standardizer
-	extraFeatures     = "telemetry.features"     // JSON list of sensor names
-	extraTypes        = "telemetry.station_types"
+	// The class (station type) names of the conditional model, a JSON
+	// list; the columns and their standardisation travel as the model's
+	// schema and standardizer (Model.SetSchema, Model.SetStandardizer).
+	extraLabels = "labels"
 	// The score settings the calibration scores were computed with
 	// (decimal strings): a threshold calibrated at one K is not valid at
 	// another, so a scoring service must score with the same K.
@@ -417,22 +418,19 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	}
 	res.Threshold = res.Calibration.Threshold()
 
-	// 5. Checkpoint: weights, model description, standardisation, sensor
-	// names and the alarm calibration in one file.
-	zJSON, err := json.Marshal(z)
-	if err != nil {
-		return res, err
-	}
-	names, _ := json.Marshal(fleet.SensorNames())
+	// 5. Checkpoint: weights, model description, schema, standardisation,
+	// station-type names, the alarm calibration and its score settings in
+	// one file.
 	var typeNames []string
 	for _, t := range fleet.StationTypes() {
 		typeNames = append(typeNames, t.Name)
 	}
-	types, _ := json.Marshal(typeNames)
-	for k, v := range map[string]string{extraStandardizer: string(zJSON), extraFeatures: string(names), extraTypes: string(types)} {
-		if err := m.SetExtra(k, v); err != nil {
-			return res, err
-		}
+	types, err := json.Marshal(typeNames)
+	if err != nil {
+		return res, err
+	}
+	if err := m.SetExtra(extraLabels, string(types)); err != nil {
+		return res, err
 	}
 	if err := m.SetSchema(schema); err != nil {
 		return res, err
