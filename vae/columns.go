@@ -154,6 +154,9 @@ func (m *Model) ScoreColumns(ctx context.Context, data *dataset.Set, opt ScoreOp
 	if err := checkKeys("ScoreColumns", opt.Keys, n); err != nil {
 		return nil, nil, err
 	}
+	if m.lean != nil {
+		return m.leanScoreColumns(ctx, data, k, opt)
+	}
 	scores := make([]float64, n)
 	contrib := mat.NewDense(n, c, nil)
 	run := sampledRun{data: data, k: k, seed: opt.Seed, keys: opt.Keys, atMean: opt.AtPosteriorMean}
