@@ -1,6 +1,7 @@
 package vae
 
 import (
+	"bytes"
 	"context"
 	"errors"
 	"fmt"
@@ -423,5 +424,35 @@ func TestScorerColumnsNoAllocations(t *testing.T) {
 				t.Fatalf("classes %d, %+v: %v allocations per score, want 0", classes, opt, allocs)
 			}
 		}
+	}
+}
+
+// TestScorerColumnsAfterLoad checks that a columns model read back from a
+// checkpoint runs lean and scores as the saved model does (bit for bit:
+// the same parameters through the same plan).
+func TestScorerColumnsAfterLoad(t *testing.T) {
+	ctx := context.Background()
+	m := leanColModel(t, tensor.Float32, 3, false)
+	data := leanColSet(t, m, 40, 6)
+	var buf bytes.Buffer
+	if err := m.SaveTo(&buf); err != nil {
+		t.Fatal(err)
+	}
+	back, err := LoadFrom(&buf)
+	if err != nil {
+		t.Fatal(err)
+	}
+	r := Records{X: data.Values(), Labels: data.Labels()}
+	f := m.Features()
+	want, wantCols := make([]float64, 40), make([]float64, 40*f)
+	if err := newScorer(t, m, ScorerOptions{K: 2, Seed: 8}).Score(ctx, want, r, wantCols); err != nil {
+		t.Fatal(err)
+	}
+	got, cols := make([]float64, 40), make([]float64, 40*f)
+	if err := newScorer(t, back, ScorerOptions{K: 2, Seed: 8}).Score(ctx, got, r, cols); err != nil {
+		t.Fatal(err)
+	}
+	if !slices.Equal(got, want) || !slices.Equal(cols, wantCols) {
+		t.Fatal("the loaded model scores differently from the saved one")
 	}
 }
