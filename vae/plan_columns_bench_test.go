@@ -101,10 +101,20 @@ func BenchmarkScoreRecordColumns(b *testing.B) {
 	reportLatency(b, lat)
 }
 
-// BenchmarkScoreRecordColumnsGraph is the same through the graph path
-// (Model.ScoreColumns on a one-record data set).
+// BenchmarkScoreRecordColumnsModel is the same through Model.ScoreColumns
+// on a one-record data set (the lean path, with a data set and the
+// results allocated per call).
+func BenchmarkScoreRecordColumnsModel(b *testing.B) {
+	benchScoreColumnsModel(b, serveColumnsModel(b))
+}
+
+// BenchmarkScoreRecordColumnsGraph is Model.ScoreColumns on the graph
+// path, as the model was served before the lean path ran columns.
 func BenchmarkScoreRecordColumnsGraph(b *testing.B) {
-	m := serveColumnsModel(b)
+	benchScoreColumnsModel(b, graphOnly(serveColumnsModel(b)))
+}
+
+func benchScoreColumnsModel(b *testing.B, m *Model) {
 	x, labels := serveColumnsRecords(256)
 	sets := make([]*dataset.Set, 256)
 	for i := range sets {
