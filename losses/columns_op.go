@@ -24,14 +24,22 @@ type columnsOp struct {
 
 func (op *columnsOp) hashString() string { return fmt.Sprintf("%v", op.cols) }
 
-// colTerms computes, for one record, the log-probability of each column and
-// (when dOut, dLs are non-nil) the derivatives of each column's term with
-// respect to its outputs (written into dOut at the column's offsets) and
-// to its log sigma (dLs[j]).
+// colTerms computes the terms of one record, see columnTerms.
 func (op *columnsOp) colTerms(x, out, ls, lp, dOut, dLs []float64) {
-	for j, c := range op.cols {
+	columnTerms(op.cols, op.offs, x, out, ls, lp, dOut, dLs)
+}
+
+// columnTerms computes, for one record of the columns cols (whose outputs
+// start at offs), the log-probability of each column and (when dOut, dLs
+// are non-nil) the derivatives of each column's term with respect to its
+// outputs (written into dOut at the column's offsets) and to its log sigma
+// (dLs[j]). It is the one implementation of the per-column formulas: the
+// graph op's forward pass and gradients and Columns.LogProbRow (the lean
+// inference path) call it. It allocates nothing.
+func columnTerms(cols []Column, offs []int, x, out, ls, lp, dOut, dLs []float64) {
+	for j, c := range cols {
 		xv := x[j]
-		o := op.offs[j]
+		o := offs[j]
 		if dLs != nil {
 			dLs[j] = 0
 		}

@@ -136,7 +136,9 @@ func (m *Model) Standardizer() (dataset.Standardizer, bool, error) {
 // AtPosteriorMean), 0 for a missing entry. A row sums to the record's
 // reconstruction term -E_q[log p(x_obs | z)]; the column with the largest
 // entry is the input that drives the record's score most. The model's
-// likelihood must be a *losses.Columns (else ErrNotColumns).
+// likelihood must be a *losses.Columns (else ErrNotColumns). A Scorer
+// gives the same numbers record by record (its columns argument) without
+// allocating.
 func (m *Model) ScoreColumns(ctx context.Context, data *dataset.Set, opt ScoreOptions) ([]float64, *mat.Dense, error) {
 	if m.cols == nil {
 		return nil, nil, fmt.Errorf("vae.ScoreColumns: %w", ErrNotColumns)
@@ -153,6 +155,9 @@ func (m *Model) ScoreColumns(ctx context.Context, data *dataset.Set, opt ScoreOp
 	}
 	if err := checkKeys("ScoreColumns", opt.Keys, n); err != nil {
 		return nil, nil, err
+	}
+	if m.lean != nil {
+		return m.leanScoreColumns(ctx, data, k, opt)
 	}
 	scores := make([]float64, n)
 	contrib := mat.NewDense(n, c, nil)

@@ -83,7 +83,10 @@
 // with the conditional mean (mode for categories) decoded at the posterior
 // mean; ImputeDraws draws seeded multiple imputations from the posterior;
 // ScoreColumns returns, beside the scores, each column's contribution to
-// the reconstruction term (which input drives an alarm). SetSchema and
+// the reconstruction term (which input drives an alarm); a Scorer gives
+// the same per-column terms for one record at a time, taking NaN as a
+// missing entry. All of these but ImputeDraws (which decodes its draws
+// through a graph) run on the lean inference path. SetSchema and
 // SetStandardizer store the schema and the standardisation in the
 // checkpoint metadata, and Schema and Standardizer read them back after
 // Load.

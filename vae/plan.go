@@ -100,6 +100,7 @@ const (
 	likBernoulli likKind = iota
 	likGaussian
 	likLearned
+	likColumns // *losses.Columns, see plan_columns.go
 )
 
 type priorKind int
@@ -132,6 +133,8 @@ type planT[T float] struct {
 	lik     likKind
 	sigma   float64       // Gaussian
 	logSig  *layers.Param // learned Gaussian
+	cols    *colPlan      // columns likelihood
+	outW    int           // decoder outputs per record: F, or the columns' OutputWidth
 	prior   priorKind
 	pParams []*layers.Param // diagonal: mean, logvar; mixture: logits, means, logvars; vamp: pseudo-inputs
 	comps   int             // mixture or vamp components
@@ -181,7 +184,10 @@ func compilePlan[T float](m *Model, k kernels[T]) (*planT[T], error) {
 	cfg := m.cfg
 	p := &planT[T]{m: m, k: k, f: m.width, d: m.latent, c: cfg.Classes, image: len(cfg.InputShape) == 3}
 	inShape := append([]int(nil), cfg.InputShape...)
-	p.encIn = p.f + p.c
+	if m.cols != nil {
+		inShape[0] = m.cols.EncoderWidth() // see plan_columns.go
+	}
+	p.encIn = inShape[0] + p.c
 	if p.image {
 		p.hw = inShape[1] * inShape[2]
 		inShape[0] += p.c
@@ -205,8 +211,9 @@ func compilePlan[T float](m *Model, k kernels[T]) (*planT[T], error) {
 	if p.dec, shape, err = p.compileLayer("decoder", cfg.Decoder, []int{p.decIn}, nil); err != nil {
 		return nil, err
 	}
-	if prod(shape) != p.f {
-		return nil, notLean("decoder", "output shape %v per record, want %d values", shape, p.f)
+	p.outW = m.outWidth
+	if prod(shape) != p.outW {
+		return nil, notLean("decoder", "output shape %v per record, want %d values", shape, p.outW)
 	}
 	switch l := cfg.Likelihood.(type) {
 	case losses.Bernoulli, *losses.Bernoulli:
@@ -223,6 +230,11 @@ func compilePlan[T float](m *Model, k kernels[T]) (*planT[T], error) {
 			return nil, notLean("likelihood", "learned Gaussian with %d parameters", len(ps))
 		}
 		p.lik, p.logSig = likLearned, ps[0]
+	case *losses.Columns:
+		p.lik = likColumns
+		if p.cols, err = compileColumns(l, p.f); err != nil {
+			return nil, err
+		}
 	default:
 		return nil, notLean("likelihood", "%T is not built in", l)
 	}
@@ -398,7 +410,8 @@ type leanWork[T float] struct {
 	z         []T // decoder input rows, (rows, D + classes)
 	eps       []T // one row of noise
 	zRec      []int
-	out       []T       // decoder output rows, (rows, F)
+	out       []T       // decoder output rows, (rows, outW)
+	col       *colWork  // columns likelihood scratch
 	rowLL     []float64 // per decoder row
 	rowLW     []float64 // per decoder row: log p(z) - log q(z|x)
 	// per record of the current chunk
@@ -418,13 +431,16 @@ func (p *planT[T]) newWork() *leanWork[T] {
 	w := &leanWork[T]{
 		a: make([]T, r*p.maxW), b: make([]T, r*p.maxW), tmp: make([]T, p.maxTmp),
 		x: make([]T, r*p.f), mu: make([]T, r*p.d), lv: make([]T, r*p.d), z: make([]T, r*p.decIn), eps: make([]T, p.d),
-		zRec: make([]int, r), out: make([]T, r*p.f), rowLL: make([]float64, r), rowLW: make([]float64, r),
+		zRec: make([]int, r), out: make([]T, r*p.outW), rowLL: make([]float64, r), rowLW: make([]float64, r),
 		sumLL: make([]float64, r), kl: make([]float64, r), mc: make([]float64, r), lse: make([]logSumExp, r),
 		klDim: make([]float64, r*p.d),
 		headW: make([]T, max(p.head.in, p.vampHd.in)*2*p.d), headOut: make([]T, r*2*p.d),
 	}
 	if p.lik == likLearned {
 		w.likA, w.likB = make([]float64, p.f), make([]float64, p.f)
+	}
+	if p.cols != nil {
+		w.col = p.cols.newWork()
 	}
 	if p.comps > 0 {
 		w.compMu, w.compLV = make([]float64, p.comps*p.d), make([]float64, p.comps*p.d)
@@ -530,6 +546,8 @@ func (p *planT[T]) encodeRows(w *leanWork[T], labels []int, rows int) {
 	in := w.a[:rows*p.encIn]
 	f, c := p.f, p.c
 	switch {
+	case p.cols != nil:
+		p.encodeColumnRows(w, labels, rows, in)
 	case c == 0:
 		copy(in, w.x[:rows*f])
 	case p.image:
@@ -642,6 +660,6 @@ func (p *planT[T]) decodeRows(w *leanWork[T], rows int) []T {
 	in := w.a[:rows*p.decIn]
 	copy(in, w.z[:rows*p.decIn])
 	out := p.run(p.dec, w, in, rows)
-	copy(w.out[:rows*p.f], out[:rows*p.f])
-	return w.out[:rows*p.f]
+	copy(w.out[:rows*p.outW], out[:rows*p.outW])
+	return w.out[:rows*p.outW]
 }

@@ -143,6 +143,10 @@ func (p *planT[T]) meanRows(w *leanWork[T], labels []int, first, rows int, out [
 	}
 	o := p.decodeRows(w, rows)
 	dst := out[first*f : (first+rows)*f]
+	if p.lik == likColumns {
+		p.columnsMeanRows(w, o, dst, rows)
+		return
+	}
 	if p.lik == likBernoulli {
 		for i, v := range o {
 			dst[i] = float64(T(sigmoid(float64(v))))

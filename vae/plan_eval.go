@@ -7,7 +7,6 @@ import (
 	"sync"
 
 	"lowerbound.dev/internal/vecmath"
-	"lowerbound.dev/losses"
 )
 
 // leanEval describes one evaluation through a plan and receives its
@@ -257,7 +256,7 @@ func (p *planT[T]) flush(w *leanWork[T], e *leanEval, first, rows, k int, dens b
 		if e.cols != nil {
 			cols = e.cols[(first+i)*f : (first+i+1)*f]
 		}
-		ll := p.logLikRow(w, w.x[i*f:(i+1)*f], out[r*f:(r+1)*f], cols)
+		ll := p.logLikRow(w, w.x[i*f:(i+1)*f], out[r*p.outW:(r+1)*p.outW], cols)
 		w.sumLL[i] += ll
 		if !dens {
 			continue
@@ -281,6 +280,8 @@ const log2Pi = 1.83787706640934548356065947281123527972279494727556682563430308
 func (p *planT[T]) logLikRow(w *leanWork[T], x, out []T, cols []float64) float64 {
 	var sum float64
 	switch p.lik {
+	case likColumns:
+		return p.columnsLogLik(w, x, out, cols)
 	case likBernoulli:
 		sum = p.k.bernoulli(x, out, cols)
 	case likGaussian:
@@ -424,10 +425,13 @@ func (p *planT[T]) prepare(w *leanWork[T]) {
 		for j := 0; j < p.f; j++ {
 			// log sigma = MinLogSigma + softplus(r - MinLogSigma), in the
 			// model's dtype as losses.LearnedGaussian computes it.
-			ls := T(softplus(float64(r[j]-T(losses.MinLogSigma)))) + T(losses.MinLogSigma)
+			ls := boundedLogSigma(r[j])
 			lv := float64(ls * 2)
 			w.likA[j], w.likB[j] = lv, math.Exp(-lv)
 		}
+	}
+	if p.lik == likColumns {
+		p.prepareColumns(w)
 	}
 	switch p.prior {
 	case priorMixture:

@@ -101,10 +101,20 @@ func (s *Scorer) Options() ScorerOptions { return s.opt }
 // reconstruction term -E_q[log p(x|z)]; the score adds the KL to it (K of
 // 1, or Mean) or is the importance-weighted estimate (K >= 2).
 //
+// For a model whose likelihood is a *losses.Columns (records of mixed
+// columns, see ScoreColumns) F is the number of columns: a record holds
+// one value per column, a category as its index and NaN where the entry is
+// missing, and the terms in columns are per column, -log p(x_j | z), 0 for
+// a missing entry: the entries of ScoreColumns' matrix for the same noise
+// (Mean matching AtPosteriorMean). The score covers the observed entries
+// only.
+//
 // Bad input returns an error naming the record and feature: a wrong
-// length, a NaN or infinite value, a value that overflows the float32 of a
-// float32 model (wrapping ErrInvalidArgument); a missing or out-of-range
-// label (wrapping ErrLabel); labels for an unconditional model (wrapping
+// length, a NaN or infinite value (for a columns model: an infinite value
+// or one outside its column's support, NaN being a missing entry), a value
+// that overflows the float32 of a float32 model (wrapping
+// ErrInvalidArgument); a missing or out-of-range label (wrapping
+// ErrLabel); labels for an unconditional model (wrapping
 // ErrNotConditional).
 func (s *Scorer) Score(ctx context.Context, scores []float64, r Records, columns []float64) error {
 	const where = "vae.Scorer.Score"
@@ -185,6 +195,12 @@ func (m *Model) checkRecords(where string, r Records) (int, error) {
 	n := len(r.X) / f
 	f32 := m.dtype == tensor.Float32
 	for i, v := range r.X {
+		if m.cols != nil {
+			if err := m.checkColumnValue(where, i/f, i%f, v); err != nil {
+				return 0, err
+			}
+			continue
+		}
 		bad := ""
 		switch {
 		case math.IsNaN(v):

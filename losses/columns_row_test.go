@@ -1,0 +1,101 @@
+package losses_test
+
+import (
+	"errors"
+	"math"
+	"math/rand/v2"
+	"testing"
+
+	"gonum.org/v1/gonum/stat/distuv"
+	"gorgonia.org/tensor"
+
+	"lowerbound.dev/layers"
+	"lowerbound.dev/losses"
+)
+
+// LogProbRow and MeanRow, the plain-slice forms the lean inference path
+// runs, against gonum stat/distuv (refColumn: Normal, LogNormal, Poisson,
+// Bernoulli, Categorical) and distuv's means, with missing entries.
+func TestColumnsRowMatchGonum(t *testing.T) {
+	rng := rand.New(rand.NewPCG(120, 121))
+	const n = 6
+	c := len(mixedSchema)
+	x, out, lsParam := mixedData(rng, n, true)
+	lik, err := losses.NewColumns("dec", mixedSchema, tensor.Float64)
+	if err != nil {
+		t.Fatal(err)
+	}
+	copy(lik.Params()[0].Value.Float64s(), lsParam)
+	ls := lik.LogSigmas() // the bounded learned values, log Sigma of fixed columns
+	lp, mean := make([]float64, c), make([]float64, c)
+	for i := 0; i < n; i++ {
+		row, xr := out[i*9:(i+1)*9], x[i*c:(i+1)*c]
+		sum, err := lik.LogProbRow(xr, row, ls, lp)
+		if err != nil {
+			t.Fatal(err)
+		}
+		var want float64
+		for j := 0; j < c; j++ {
+			v := refColumn(j, xr[j], row, floorRef(lsParam[j]))
+			want += v
+			if !closeRel(lp[j], v, 1e-12) {
+				t.Errorf("record %d column %d: LogProbRow %v, distuv %v", i, j, lp[j], v)
+			}
+			if math.IsNaN(xr[j]) && lp[j] != 0 {
+				t.Errorf("record %d column %d: missing entry gives %v, want 0", i, j, lp[j])
+			}
+		}
+		if !closeRel(sum, want, 1e-12) {
+			t.Errorf("record %d: sum %v, distuv %v", i, sum, want)
+		}
+		if err := lik.MeanRow(row, ls, mean); err != nil {
+			t.Fatal(err)
+		}
+		wantMean := []float64{row[0], row[1],
+			distuv.LogNormal{Mu: row[2], Sigma: 0.8}.Mean(),
+			distuv.LogNormal{Mu: row[3], Sigma: math.Exp(floorRef(lsParam[3]))}.Mean(),
+			distuv.Poisson{Lambda: math.Exp(row[4])}.Mean(),
+			distuv.Bernoulli{P: sigmoid(row[5])}.Mean()}
+		for j, v := range wantMean {
+			if !closeRel(mean[j], v, 1e-12) {
+				t.Errorf("record %d column %d: MeanRow %v, distuv %v", i, j, mean[j], v)
+			}
+		}
+		cat := categorical(row[6:9])
+		mode := 0
+		for k := 1; k < 3; k++ {
+			if cat.Prob(float64(k)) > cat.Prob(float64(mode)) {
+				mode = k
+			}
+		}
+		if mean[6] != float64(mode) {
+			t.Errorf("record %d: categorical mode %v, distuv %d", i, mean[6], mode)
+		}
+	}
+	// Out of support: -Inf, as the graph op gives.
+	bad := []float64{0, 0, -1, 1, 0.5, 0, 0}
+	if _, err := lik.LogProbRow(bad, out[:9], ls, lp); err != nil || !math.IsInf(lp[2], -1) || !math.IsInf(lp[4], -1) {
+		t.Errorf("out-of-support entries: lp %v, err %v; want -Inf for columns 2 and 4", lp, err)
+	}
+	// Wrong lengths are errors, not panics.
+	if _, err := lik.LogProbRow(x[:c-1], out[:9], ls, lp); !errors.Is(err, layers.ErrInvalidArgument) {
+		t.Errorf("short x: err = %v", err)
+	}
+	if _, err := lik.LogProbRow(x[:c], out[:8], ls, lp); !errors.Is(err, layers.ErrInvalidArgument) {
+		t.Errorf("short out: err = %v", err)
+	}
+	if err := lik.MeanRow(out[:9], ls[:2], mean); !errors.Is(err, layers.ErrInvalidArgument) {
+		t.Errorf("short logSigmas: err = %v", err)
+	}
+	var zero losses.Columns
+	if err := zero.MeanRow(out[:9], ls, mean); !errors.Is(err, layers.ErrInvalidArgument) {
+		t.Errorf("zero Columns: err = %v", err)
+	}
+}
+
+func closeRel(a, b, tol float64) bool {
+	if math.IsInf(a, 0) || math.IsInf(b, 0) {
+		return a == b
+	}
+	return math.Abs(a-b) <= tol*math.Max(1, math.Max(math.Abs(a), math.Abs(b)))
+}
