@@ -228,16 +228,7 @@ func (c *Columns) logSigmaNode(s *layers.Scope, like *G.Node) (*G.Node, error) {
 		if s == nil {
 			return nil, argError(where, "s", "nil scope")
 		}
-		r := s.Bind(c.logSigma)
-		shifted, err := G.Sub(r, scalar(r, MinLogSigma))
-		if err != nil {
-			return nil, opError(where, "shift", err)
-		}
-		sp, err := softplus(shifted)
-		if err != nil {
-			return nil, opError(where, "softplus", err)
-		}
-		return G.Add(sp, scalar(r, MinLogSigma))
+		return boundedLogSigma(where, s.Bind(c.logSigma))
 	}
 	vals := make([]float64, len(c.cols))
 	for j, col := range c.cols {

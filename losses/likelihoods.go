@@ -130,7 +130,15 @@ func (l *LearnedGaussian) LogSigma(s *layers.Scope) (*G.Node, error) {
 	if s == nil {
 		return nil, argError(where, "s", "nil scope")
 	}
-	r := s.Bind(l.logSigma)
+	return boundedLogSigma(where, s.Bind(l.logSigma))
+}
+
+// boundedLogSigma maps the raw parameter node r to the log standard
+// deviation MinLogSigma + softplus(r - MinLogSigma): smooth, increasing,
+// never below MinLogSigma, and close to r well above it. It is the one
+// implementation of the floor for every learned-sigma likelihood (the
+// checkpoint format records it as the "softplus_floor" transform).
+func boundedLogSigma(where string, r *G.Node) (*G.Node, error) {
 	shifted, err := G.Sub(r, scalar(r, MinLogSigma))
 	if err != nil {
 		return nil, opError(where, "shift", err)
