@@ -136,20 +136,7 @@ func runFiles(ctx context.Context, cfg Config) (FilesResult, error) {
 	if res.Calibration, err = alarm.Calibrate(calScores, cfg.Alpha); err != nil {
 		return res, err
 	}
-	if err := m.SetSchema(sc); err != nil {
-		return res, err
-	}
-	if err := m.SetStandardizer(z); err != nil {
-		return res, err
-	}
-	if err := alarm.Put(m, res.Calibration); err != nil {
-		return res, err
-	}
-	if err := putScoreOptions(m, cfg.K, cfg.Seed); err != nil {
-		return res, err
-	}
-	res.Checkpoint = filepath.Join(cfg.Out, "model.safetensors")
-	if err := m.Save(res.Checkpoint); err != nil {
+	if res.Checkpoint, err = saveCheckpoint(m, cfg.Out, sc, z, res.Calibration, cfg.K, cfg.Seed); err != nil {
 		return res, err
 	}
 

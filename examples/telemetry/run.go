@@ -53,6 +53,27 @@ func putScoreOptions(m *vae.Model, k int, seed uint64) error {
 	return m.SetExtra(extraScoreSeed, strconv.FormatUint(seed, 10))
 }
 
+// saveCheckpoint writes out/model.safetensors: the weights and model
+// description, the schema and standardisation that read and scale raw
+// records, the alarm calibration and the K and seed it was scored with. It
+// returns the file's path.
+func saveCheckpoint(m *vae.Model, out string, sc dataset.Schema, z dataset.Standardizer, cal *alarm.Calibration, k int, seed uint64) (string, error) {
+	if err := m.SetSchema(sc); err != nil {
+		return "", err
+	}
+	if err := m.SetStandardizer(z); err != nil {
+		return "", err
+	}
+	if err := alarm.Put(m, cal); err != nil {
+		return "", err
+	}
+	if err := putScoreOptions(m, k, seed); err != nil {
+		return "", err
+	}
+	path := filepath.Join(out, "model.safetensors")
+	return path, m.Save(path)
+}
+
 // Disclaimer is printed by the program and stated in its documentation.
 const Disclaimer = "The scores are a screening aid, not a protection system: alarms, trips and inspections follow the site's own procedures, local codes and qualified staff."
 
@@ -432,20 +453,7 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	if err := m.SetExtra(extraLabels, string(types)); err != nil {
 		return res, err
 	}
-	if err := m.SetSchema(schema); err != nil {
-		return res, err
-	}
-	if err := m.SetStandardizer(z); err != nil {
-		return res, err
-	}
-	if err := alarm.Put(m, res.Calibration); err != nil {
-		return res, err
-	}
-	if err := putScoreOptions(m, cfg.K, cfg.Seed); err != nil {
-		return res, err
-	}
-	res.Checkpoint = filepath.Join(cfg.Out, "model.safetensors")
-	if err := m.Save(res.Checkpoint); err != nil {
+	if res.Checkpoint, err = saveCheckpoint(m, cfg.Out, schema, z, res.Calibration, cfg.K, cfg.Seed); err != nil {
 		return res, err
 	}
 
