@@ -277,6 +277,13 @@ func denseInputs(name string, arity int, vals ...G.Value) ([2]*tensor.Dense, *te
 //
 //	forward:  s_r = sum_f x_rf*l_rf - softplus(l_rf)
 //	backward: ds/dl_rf = g_r*(x_rf - sigmoid(l_rf)),  ds/dx_rf = g_r*l_rf
+//
+// In float32 these per-record sums (the training loss) use the fast kernels
+// of internal/vecmath (BernoulliRowSum32, BernoulliGradRow32: float32
+// polynomials, eight values at a time in AVX2 assembly on amd64): each term's
+// softplus tail log1p(e^-|l|) is within 4 ulp and each gradient term
+// x - sigmoid(l) within 4 ulp (for x in {0, 1}) of the exact values, against
+// 0.51 ulp for the elementwise op above; the sum is accumulated in float64.
 
 // bernoulliPerSample returns the (N) per-record Bernoulli log-likelihoods
 // of the (N, F) observations x under the logits: the same values as
@@ -342,17 +349,8 @@ func (op *bernoulliRowsOp) Do(vals ...G.Value) (G.Value, error) {
 	case []float32:
 		xs, ls := in[0].Data().([]float32), l.Data().([]float32)
 		for r := 0; r < n; r++ {
-			// Accumulate in float64: a record sums hundreds of terms.
-			var acc float64
-			xr, lr := xs[r*f:(r+1)*f], ls[r*f:(r+1)*f]
-			for i, li := range lr {
-				relu, negAbs := li, -li
-				if li < 0 {
-					relu, negAbs = 0, li
-				}
-				acc += float64((xr[i]*li - relu) - vecmath.Log1pExp32(negAbs))
-			}
-			s[r] = float32(acc)
+			// Fast kernels (a few ulp per term), float64 accumulation.
+			s[r] = float32(vecmath.BernoulliRowSum32(xs[r*f:(r+1)*f], ls[r*f:(r+1)*f]))
 		}
 	default:
 		return nil, fmt.Errorf("losses: Bernoulli: dtype %v is not float32 or float64", l.Dtype())
@@ -449,7 +447,7 @@ func (op *bernoulliRowsGradOp) Do(vals ...G.Value) (G.Value, error) {
 				}
 				continue
 			}
-			bernoulliBackwardRow32(o[lo:hi], xs[lo:hi], ls[lo:hi], gr)
+			vecmath.BernoulliGradRow32(o[lo:hi], xs[lo:hi], ls[lo:hi], gr)
 		}
 	default:
 		return nil, fmt.Errorf("losses: Bernoulli gradient: dtype %v is not float32 or float64", l.Dtype())
@@ -467,19 +465,6 @@ func bernoulliBackwardRow64(out, x, l []float64, g float64) {
 		} else {
 			e := math.Exp(li)
 			d = x[i] - e/(1+e)
-		}
-		out[i] = g * d
-	}
-}
-
-func bernoulliBackwardRow32(out, x, l []float32, g float32) {
-	x, out = x[:len(l)], out[:len(l)]
-	for i, li := range l {
-		var d float32
-		if li >= 0 {
-			d = (x[i] - 1) + vecmath.Sigmoid32(-li)
-		} else {
-			d = x[i] - vecmath.Sigmoid32(li)
 		}
 		out[i] = g * d
 	}

@@ -1,0 +1,10 @@
+//go:build !amd64
+
+package vecmath
+
+// Off amd64 the portable Go kernels run.
+const useAsm = false
+
+func bernoulliRowSumAVX2(x, l []float32) float64 { return bernoulliRowSumGo(x, l) }
+
+func bernoulliGradRowAVX2(out, x, l []float32, g float32) { bernoulliGradRowGo(out, x, l, g) }
