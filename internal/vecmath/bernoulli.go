@@ -6,7 +6,7 @@ import "math"
 //
 // The 0.51-ulp kernels above evaluate in float64, one value at a time. The
 // kernels below evaluate in float32 with short polynomials, eight values at
-// a time in AVX2+FMA assembly on amd64 (bernoulli_amd64.s) and one at a
+// a time in AVX2+FMA assembly on amd64 (kernels_amd64.s) and one at a
 // time in the portable Go functions of this file elsewhere; both follow the
 // same steps:
 //

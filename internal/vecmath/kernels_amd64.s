@@ -2,6 +2,8 @@
 
 #include "textflag.h"
 
+// Float32 assembly kernels (AVX2+FMA) of bernoulli.go and adam.go.
+
 // Float32 constants of the fast Bernoulli kernels (see bernoulli.go), each
 // broadcast to eight lanes where it is used.
 DATA bconst<>+0(SB)/4, $0x80000000  // sign bit
@@ -162,4 +164,67 @@ gradloop:
 
 graddone:
 	VZEROUPPER
+	RET
+
+// func adamAVX2(w, g, m, v, prev []float32, c *AdamCoeffs) float32
+TEXT ·adamAVX2(SB), NOSPLIT, $0-132
+	MOVQ w_base+0(FP), DI
+	MOVQ w_len+8(FP), CX
+	MOVQ g_base+24(FP), SI
+	MOVQ m_base+48(FP), R8
+	MOVQ v_base+72(FP), R9
+	MOVQ prev_base+96(FP), R10
+	MOVQ c+120(FP), AX
+	SHRQ $3, CX
+	VBROADCASTSS 0(AX), Y8   // B1
+	VBROADCASTSS 4(AX), Y9   // OB1
+	VBROADCASTSS 8(AX), Y10  // B2
+	VBROADCASTSS 12(AX), Y11 // OB2
+	VBROADCASTSS 16(AX), Y12 // LR
+	VBROADCASTSS 20(AX), Y13 // Eps
+	VBROADCASTSS 24(AX), Y14 // IC1
+	VBROADCASTSS 28(AX), Y15 // IC2
+	VXORPS Y0, Y0, Y0
+	TESTQ CX, CX
+	JZ    adamdone
+
+adamloop:
+	VMOVUPS (SI), Y1
+	VMULPS  (R8), Y8, Y2
+	VMULPS  Y1, Y9, Y3
+	VADDPS  Y3, Y2, Y2  // m
+	VMOVUPS Y2, (R8)
+	VMULPS  (R9), Y10, Y4
+	VMULPS  Y1, Y11, Y5
+	VMULPS  Y1, Y5, Y5
+	VADDPS  Y5, Y4, Y4  // v
+	VMOVUPS Y4, (R9)
+	VMOVUPS (DI), Y6
+	VMOVUPS Y6, (R10)
+	VMULPS  Y15, Y4, Y4
+	VSQRTPS Y4, Y4
+	VADDPS  Y13, Y4, Y4 // sqrt(v*IC2) + Eps
+	VMULPS  Y14, Y2, Y2
+	VMULPS  Y12, Y2, Y2 // LR*(m*IC1)
+	VDIVPS  Y4, Y2, Y2
+	VSUBPS  Y2, Y6, Y6
+	VMOVUPS Y6, (DI)
+	VSUBPS  Y6, Y6, Y7
+	VADDPS  Y7, Y0, Y0
+
+	ADDQ $32, DI
+	ADDQ $32, SI
+	ADDQ $32, R8
+	ADDQ $32, R9
+	ADDQ $32, R10
+	DECQ CX
+	JNZ  adamloop
+
+adamdone:
+	VEXTRACTF128 $1, Y0, X1
+	VADDPS       X1, X0, X0
+	VHADDPS      X0, X0, X0
+	VHADDPS      X0, X0, X0
+	VZEROUPPER
+	MOVSS        X0, ret+128(FP)
 	RET

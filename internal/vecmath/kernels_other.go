@@ -8,3 +8,5 @@ const useAsm = false
 func bernoulliRowSumAVX2(x, l []float32) float64 { return bernoulliRowSumGo(x, l) }
 
 func bernoulliGradRowAVX2(out, x, l []float32, g float32) { bernoulliGradRowGo(out, x, l, g) }
+
+func adamAVX2(w, g, m, v, prev []float32, c *AdamCoeffs) float32 { return adamGo(w, g, m, v, prev, c) }

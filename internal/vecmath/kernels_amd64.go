@@ -4,7 +4,7 @@ package vecmath
 
 import "golang.org/x/sys/cpu"
 
-// useAsm selects the AVX2+FMA kernels of bernoulli_amd64.s; it is set once,
+// useAsm selects the AVX2+FMA kernels of kernels_amd64.s; it is set once,
 // when the package loads, from the CPU's features.
 var useAsm = cpu.X86.HasAVX2 && cpu.X86.HasFMA
 
@@ -19,3 +19,9 @@ func bernoulliRowSumAVX2(x, l []float32) float64
 //
 //go:noescape
 func bernoulliGradRowAVX2(out, x, l []float32, scale float32)
+
+// adamAVX2 is adamGo for len(w) a multiple of 8 and the other slices at
+// least as long.
+//
+//go:noescape
+func adamAVX2(w, g, m, v, prev []float32, c *AdamCoeffs) float32
