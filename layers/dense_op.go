@@ -41,9 +41,13 @@ import (
 // no two graphs share an op value, so reusing the buffers is safe.
 
 // denseOp computes act(x W + b) from (x, W, b).
+//
+// With noGradX (x marked as data in its Scope) the op has no gradient with
+// respect to x, and its backward pass skips the product d Wᵀ.
 type denseOp struct {
-	act Activation
-	out *tensor.Dense
+	act     Activation
+	noGradX bool
+	out     *tensor.Dense
 }
 
 // fusable reports whether a has a fused forward and backward.
@@ -106,7 +110,7 @@ func (op *denseOp) Do(vals ...G.Value) (G.Value, error) {
 	return op.out, nil
 }
 
-func (*denseOp) DiffWRT(int) []bool { return []bool{true, true, true} }
+func (op *denseOp) DiffWRT(int) []bool { return []bool{!op.noGradX, true, true} }
 
 func (op *denseOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
 	if len(inputs) != 3 {
@@ -120,9 +124,12 @@ func (op *denseOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error
 			return nil, err
 		}
 	}
-	gx, err := G.ApplyOp(&gemmOp{transB: true}, d, w)
-	if err != nil {
-		return nil, err
+	var gx *G.Node // nil: gorgonia skips inputs that DiffWRT excludes
+	if !op.noGradX {
+		var err error
+		if gx, err = G.ApplyOp(&gemmOp{transB: true}, d, w); err != nil {
+			return nil, err
+		}
 	}
 	gw, err := G.ApplyOp(&gemmOp{transA: true}, x, d)
 	if err != nil {
@@ -140,6 +147,9 @@ func (*denseOp) CallsExtern() bool    { return false }
 func (*denseOp) OverwritesInput() int { return -1 }
 func (op *denseOp) WriteHash(h hash.Hash) {
 	fmt.Fprintf(h, "lowerbound.layers.dense(%s)", op.act)
+	if op.noGradX {
+		fmt.Fprint(h, "(no dx)")
+	}
 }
 func (op *denseOp) Hashcode() uint32 { return opHash(op) }
 func (op *denseOp) String() string   { return "Dense(" + string(op.act) + ")" }

@@ -289,7 +289,10 @@ func denseInputs(name string, arity int, vals ...G.Value) ([2]*tensor.Dense, *te
 // of the (N, F) observations x under the logits: the same values as
 // PerSample(BernoulliLogProb(x, logits)), with the same argument checks,
 // as one op.
-func bernoulliPerSample(x, logits *G.Node) (*G.Node, error) {
+//
+// With noGradX (x marked as data in the scope) the op has no gradient with
+// respect to x.
+func bernoulliPerSample(x, logits *G.Node, noGradX bool) (*G.Node, error) {
 	const where = "losses.BernoulliLogProb"
 	if err := checkMatrix(where, "x", x); err != nil {
 		return nil, err
@@ -297,14 +300,17 @@ func bernoulliPerSample(x, logits *G.Node) (*G.Node, error) {
 	if err := checkSame(where, "logits", logits, "x", x); err != nil {
 		return nil, err
 	}
-	out, err := G.ApplyOp(&bernoulliRowsOp{}, x, logits)
+	out, err := G.ApplyOp(&bernoulliRowsOp{noGradX: noGradX}, x, logits)
 	if err != nil {
 		return nil, opError(where, "Bernoulli", err)
 	}
 	return out, nil
 }
 
-type bernoulliRowsOp struct{ out *tensor.Dense }
+type bernoulliRowsOp struct {
+	noGradX bool
+	out     *tensor.Dense
+}
 
 func (*bernoulliRowsOp) Arity() int { return 2 }
 
@@ -358,16 +364,19 @@ func (op *bernoulliRowsOp) Do(vals ...G.Value) (G.Value, error) {
 	return op.out, nil
 }
 
-func (*bernoulliRowsOp) DiffWRT(inputs int) []bool { return []bool{true, true} }
+func (op *bernoulliRowsOp) DiffWRT(inputs int) []bool { return []bool{!op.noGradX, true} }
 
-func (*bernoulliRowsOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
+func (op *bernoulliRowsOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
 	if len(inputs) != 2 {
 		return nil, fmt.Errorf("losses: Bernoulli: want 2 inputs, have %d", len(inputs))
 	}
 	x, l := inputs[0], inputs[1]
-	gx, err := G.ApplyOp(&bernoulliRowsGradOp{wrtX: true}, x, l, grad)
-	if err != nil {
-		return nil, err
+	var gx *G.Node // nil: gorgonia skips inputs that DiffWRT excludes
+	if !op.noGradX {
+		var err error
+		if gx, err = G.ApplyOp(&bernoulliRowsGradOp{wrtX: true}, x, l, grad); err != nil {
+			return nil, err
+		}
 	}
 	gl, err := G.ApplyOp(&bernoulliRowsGradOp{}, x, l, grad)
 	if err != nil {
@@ -376,12 +385,17 @@ func (*bernoulliRowsOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, 
 	return G.Nodes{gx, gl}, nil
 }
 
-func (*bernoulliRowsOp) ReturnsPtr() bool      { return false }
-func (*bernoulliRowsOp) CallsExtern() bool     { return false }
-func (*bernoulliRowsOp) OverwritesInput() int  { return -1 }
-func (*bernoulliRowsOp) WriteHash(h hash.Hash) { fmt.Fprint(h, "lowerbound.losses.bernoulli_rows") }
-func (op *bernoulliRowsOp) Hashcode() uint32   { return opHash(op) }
-func (*bernoulliRowsOp) String() string        { return "BernoulliLogProbRows" }
+func (*bernoulliRowsOp) ReturnsPtr() bool     { return false }
+func (*bernoulliRowsOp) CallsExtern() bool    { return false }
+func (*bernoulliRowsOp) OverwritesInput() int { return -1 }
+func (op *bernoulliRowsOp) WriteHash(h hash.Hash) {
+	fmt.Fprint(h, "lowerbound.losses.bernoulli_rows")
+	if op.noGradX {
+		fmt.Fprint(h, "(no dx)")
+	}
+}
+func (op *bernoulliRowsOp) Hashcode() uint32 { return opHash(op) }
+func (*bernoulliRowsOp) String() string      { return "BernoulliLogProbRows" }
 
 // bernoulliRowsGradOp computes, from (x, l, g) with g of shape (N), either
 // g_r*(x_rf - sigmoid(l_rf)) (the gradient with respect to the logits) or,
