@@ -30,6 +30,10 @@ import (
 // which gives derivative 1 at 0 as Rectify's x*(x >= 0) does; tanh' = 1 - y²,
 // sigmoid' = y(1 - y), softplus' = 1 - e^-y, ELU' = y + alpha below zero.
 //
+// In float32, tanh uses the fast kernel of internal/vecmath (float32
+// polynomial, AVX2 assembly on amd64, at most 3 ulp against math.Tanh); the
+// other activations the 0.51-ulp kernels.
+//
 // The matrix products go through gorgonia's current BLAS (G.WhichBLAS), so
 // an implementation installed with G.Use serves these ops too.
 //
@@ -423,9 +427,8 @@ func activate32(a Activation, y []float32) {
 			}
 		}
 	case Tanh:
-		for i, v := range y {
-			y[i] = vecmath.Tanh32(v)
-		}
+		// Fast kernel: at most 3 ulp (vecmath.TanhSlice32).
+		vecmath.TanhSlice32(y)
 	case Sigmoid:
 		for i, v := range y {
 			y[i] = vecmath.Sigmoid32(v)

@@ -25,3 +25,8 @@ func bernoulliGradRowAVX2(out, x, l []float32, scale float32)
 //
 //go:noescape
 func adamAVX2(w, g, m, v, prev []float32, c *AdamCoeffs) float32
+
+// tanhAVX2 is tanhFast32 over y, len(y) a multiple of 8.
+//
+//go:noescape
+func tanhAVX2(y []float32)

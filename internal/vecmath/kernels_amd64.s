@@ -228,3 +228,61 @@ adamdone:
 	VZEROUPPER
 	MOVSS        X0, ret+128(FP)
 	RET
+
+// func tanhAVX2(y []float32)
+TEXT ·tanhAVX2(SB), NOSPLIT, $0-24
+	MOVQ y_base+0(FP), DI
+	MOVQ y_len+8(FP), CX
+	SHRQ $3, CX
+	VBROADCASTSS bconst<>+0(SB), Y14  // sign bit
+	VBROADCASTSS bconst<>+44(SB), Y13 // 1
+	VBROADCASTSS bconst<>+48(SB), Y12 // 2
+	TESTQ CX, CX
+	JZ    tanhdone
+
+tanhloop:
+	VMOVUPS (DI), Y2
+	VANDNPS Y2, Y14, Y3 // |x|
+	VADDPS  Y3, Y3, Y3
+	VXORPS  Y14, Y3, Y7 // y = -2|x|
+	VBROADCASTSS bconst<>+4(SB), Y8
+	VMAXPS       Y7, Y8, Y7 // max(-87, y); NaN passes
+	VBROADCASTSS bconst<>+8(SB), Y8
+	VMULPS       Y8, Y7, Y8
+	VROUNDPS     $0, Y8, Y8 // n
+	VBROADCASTSS bconst<>+12(SB), Y10
+	VFNMADD231PS Y10, Y8, Y7
+	VBROADCASTSS bconst<>+16(SB), Y10
+	VFNMADD231PS Y10, Y8, Y7 // r
+	VBROADCASTSS bconst<>+20(SB), Y9
+	VBROADCASTSS bconst<>+24(SB), Y10
+	VFMADD213PS  Y10, Y7, Y9
+	VBROADCASTSS bconst<>+28(SB), Y10
+	VFMADD213PS  Y10, Y7, Y9
+	VBROADCASTSS bconst<>+32(SB), Y10
+	VFMADD213PS  Y10, Y7, Y9
+	VBROADCASTSS bconst<>+36(SB), Y10
+	VFMADD213PS  Y10, Y7, Y9
+	VBROADCASTSS bconst<>+40(SB), Y10
+	VFMADD213PS  Y10, Y7, Y9
+	VMULPS       Y7, Y9, Y9
+	VFMADD213PS  Y7, Y7, Y9 // p = e^r - 1 = (p*r)*r + r
+	VCVTPS2DQ    Y8, Y8
+	VPSLLD       $23, Y8, Y8
+	VPADDD       Y13, Y8, Y8 // s = 2^n (bits of 1.0 plus n<<23)
+	VSUBPS       Y13, Y8, Y10 // s - 1
+	VFMADD213PS  Y10, Y8, Y9  // em = s*p + (s - 1)
+	VADDPS       Y12, Y9, Y10
+	VDIVPS       Y10, Y9, Y9 // em/(2 + em)
+	VANDNPS      Y9, Y14, Y9 // |.|
+	VANDPS       Y14, Y2, Y3
+	VORPS        Y3, Y9, Y9  // with x's sign
+	VMOVUPS      Y9, (DI)
+
+	ADDQ $32, DI
+	DECQ CX
+	JNZ  tanhloop
+
+tanhdone:
+	VZEROUPPER
+	RET
