@@ -26,9 +26,10 @@ import "math"
 // values, and checked there for both implementations:
 //
 //	log1p(e^-|l|) (the softplus tail): at most fastTailULP ulp for
-//	    |l| <= 87; below e^-87 absolute (< 2^-125) beyond.
+//	    |l| <= 87 (measured maximum 2.99 ulp); below e^-87 absolute
+//	    (< 2^-125) beyond.
 //	sigmoid(l) as used in the gradient x - sigmoid(l): at most fastSigULP
-//	    ulp of the exact gradient for x in {0, 1}.
+//	    ulp of the exact gradient for x in {0, 1} (measured maximum 2.00).
 //
 // NaN logits give NaN results; ±Inf logits give what the exact formulas
 // give in float32 arithmetic (x*l - max(l, 0) is NaN for x = 1, l = +Inf).
