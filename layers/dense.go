@@ -90,7 +90,7 @@ func (d *Dense) forward(where string, s *Scope, x *G.Node, act Activation) (*G.N
 		}
 		return act.Apply(y)
 	}
-	y, err := G.ApplyOp(&denseOp{act: act}, x, s.Bind(d.weight), s.Bind(d.bias))
+	y, err := G.ApplyOp(&denseOp{act: act, noGradX: s.IsData(x)}, x, s.Bind(d.weight), s.Bind(d.bias))
 	if err != nil {
 		return nil, fmt.Errorf("%s: %w", where, err)
 	}

@@ -68,6 +68,7 @@ type Scope struct {
 	nodes map[*Param]*G.Node
 	order []*G.Node
 	owner []*Param
+	data  map[*G.Node]bool
 }
 
 // NewScope returns a Scope for graph g.
@@ -93,6 +94,25 @@ func (s *Scope) Bind(p *Param) *G.Node {
 
 // Nodes returns the parameter nodes bound so far, in the order of first use.
 func (s *Scope) Nodes() []*G.Node { return append([]*G.Node(nil), s.order...) }
+
+// MarkData records that n, an input node of the scope's graph, holds data
+// rather than anything trained: no gradient with respect to n is wanted.
+// The fused ops of this module applied directly to n (the first Dense
+// layer, the Bernoulli likelihood's observations) then build no gradient
+// for it, which saves a matrix product of the size of the layer's weight
+// gradient per training step. Asking G.Grad for the gradient with respect
+// to a marked node fails with gorgonia's non-differentiable error; leave
+// n unmarked to have it.
+func (s *Scope) MarkData(n *G.Node) {
+	if s.data == nil {
+		s.data = make(map[*G.Node]bool)
+	}
+	s.data[n] = true
+}
+
+// IsData reports whether n was marked with MarkData (false for a nil
+// Scope).
+func (s *Scope) IsData(n *G.Node) bool { return s != nil && s.data[n] }
 
 // Params returns the parameters bound so far, in the same order as Nodes.
 func (s *Scope) Params() []*Param { return append([]*Param(nil), s.owner...) }

@@ -277,12 +277,22 @@ func denseInputs(name string, arity int, vals ...G.Value) ([2]*tensor.Dense, *te
 //
 //	forward:  s_r = sum_f x_rf*l_rf - softplus(l_rf)
 //	backward: ds/dl_rf = g_r*(x_rf - sigmoid(l_rf)),  ds/dx_rf = g_r*l_rf
+//
+// In float32 these per-record sums (the training loss) use the fast kernels
+// of internal/vecmath (BernoulliRowSum32, BernoulliGradRow32: float32
+// polynomials, eight values at a time in AVX2 assembly on amd64): each term's
+// softplus tail log1p(e^-|l|) is within 4 ulp and each gradient term
+// x - sigmoid(l) within 4 ulp (for x in {0, 1}) of the exact values, against
+// 0.51 ulp for the elementwise op above; the sum is accumulated in float64.
 
 // bernoulliPerSample returns the (N) per-record Bernoulli log-likelihoods
 // of the (N, F) observations x under the logits: the same values as
 // PerSample(BernoulliLogProb(x, logits)), with the same argument checks,
 // as one op.
-func bernoulliPerSample(x, logits *G.Node) (*G.Node, error) {
+//
+// With noGradX (x marked as data in the scope) the op has no gradient with
+// respect to x.
+func bernoulliPerSample(x, logits *G.Node, noGradX bool) (*G.Node, error) {
 	const where = "losses.BernoulliLogProb"
 	if err := checkMatrix(where, "x", x); err != nil {
 		return nil, err
@@ -290,14 +300,17 @@ func bernoulliPerSample(x, logits *G.Node) (*G.Node, error) {
 	if err := checkSame(where, "logits", logits, "x", x); err != nil {
 		return nil, err
 	}
-	out, err := G.ApplyOp(&bernoulliRowsOp{}, x, logits)
+	out, err := G.ApplyOp(&bernoulliRowsOp{noGradX: noGradX}, x, logits)
 	if err != nil {
 		return nil, opError(where, "Bernoulli", err)
 	}
 	return out, nil
 }
 
-type bernoulliRowsOp struct{ out *tensor.Dense }
+type bernoulliRowsOp struct {
+	noGradX bool
+	out     *tensor.Dense
+}
 
 func (*bernoulliRowsOp) Arity() int { return 2 }
 
@@ -342,17 +355,8 @@ func (op *bernoulliRowsOp) Do(vals ...G.Value) (G.Value, error) {
 	case []float32:
 		xs, ls := in[0].Data().([]float32), l.Data().([]float32)
 		for r := 0; r < n; r++ {
-			// Accumulate in float64: a record sums hundreds of terms.
-			var acc float64
-			xr, lr := xs[r*f:(r+1)*f], ls[r*f:(r+1)*f]
-			for i, li := range lr {
-				relu, negAbs := li, -li
-				if li < 0 {
-					relu, negAbs = 0, li
-				}
-				acc += float64((xr[i]*li - relu) - vecmath.Log1pExp32(negAbs))
-			}
-			s[r] = float32(acc)
+			// Fast kernels (a few ulp per term), float64 accumulation.
+			s[r] = float32(vecmath.BernoulliRowSum32(xs[r*f:(r+1)*f], ls[r*f:(r+1)*f]))
 		}
 	default:
 		return nil, fmt.Errorf("losses: Bernoulli: dtype %v is not float32 or float64", l.Dtype())
@@ -360,16 +364,19 @@ func (op *bernoulliRowsOp) Do(vals ...G.Value) (G.Value, error) {
 	return op.out, nil
 }
 
-func (*bernoulliRowsOp) DiffWRT(inputs int) []bool { return []bool{true, true} }
+func (op *bernoulliRowsOp) DiffWRT(inputs int) []bool { return []bool{!op.noGradX, true} }
 
-func (*bernoulliRowsOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
+func (op *bernoulliRowsOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
 	if len(inputs) != 2 {
 		return nil, fmt.Errorf("losses: Bernoulli: want 2 inputs, have %d", len(inputs))
 	}
 	x, l := inputs[0], inputs[1]
-	gx, err := G.ApplyOp(&bernoulliRowsGradOp{wrtX: true}, x, l, grad)
-	if err != nil {
-		return nil, err
+	var gx *G.Node // nil: gorgonia skips inputs that DiffWRT excludes
+	if !op.noGradX {
+		var err error
+		if gx, err = G.ApplyOp(&bernoulliRowsGradOp{wrtX: true}, x, l, grad); err != nil {
+			return nil, err
+		}
 	}
 	gl, err := G.ApplyOp(&bernoulliRowsGradOp{}, x, l, grad)
 	if err != nil {
@@ -378,12 +385,17 @@ func (*bernoulliRowsOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, 
 	return G.Nodes{gx, gl}, nil
 }
 
-func (*bernoulliRowsOp) ReturnsPtr() bool      { return false }
-func (*bernoulliRowsOp) CallsExtern() bool     { return false }
-func (*bernoulliRowsOp) OverwritesInput() int  { return -1 }
-func (*bernoulliRowsOp) WriteHash(h hash.Hash) { fmt.Fprint(h, "lowerbound.losses.bernoulli_rows") }
-func (op *bernoulliRowsOp) Hashcode() uint32   { return opHash(op) }
-func (*bernoulliRowsOp) String() string        { return "BernoulliLogProbRows" }
+func (*bernoulliRowsOp) ReturnsPtr() bool     { return false }
+func (*bernoulliRowsOp) CallsExtern() bool    { return false }
+func (*bernoulliRowsOp) OverwritesInput() int { return -1 }
+func (op *bernoulliRowsOp) WriteHash(h hash.Hash) {
+	fmt.Fprint(h, "lowerbound.losses.bernoulli_rows")
+	if op.noGradX {
+		fmt.Fprint(h, "(no dx)")
+	}
+}
+func (op *bernoulliRowsOp) Hashcode() uint32 { return opHash(op) }
+func (*bernoulliRowsOp) String() string      { return "BernoulliLogProbRows" }
 
 // bernoulliRowsGradOp computes, from (x, l, g) with g of shape (N), either
 // g_r*(x_rf - sigmoid(l_rf)) (the gradient with respect to the logits) or,
@@ -449,7 +461,7 @@ func (op *bernoulliRowsGradOp) Do(vals ...G.Value) (G.Value, error) {
 				}
 				continue
 			}
-			bernoulliBackwardRow32(o[lo:hi], xs[lo:hi], ls[lo:hi], gr)
+			vecmath.BernoulliGradRow32(o[lo:hi], xs[lo:hi], ls[lo:hi], gr)
 		}
 	default:
 		return nil, fmt.Errorf("losses: Bernoulli gradient: dtype %v is not float32 or float64", l.Dtype())
@@ -467,19 +479,6 @@ func bernoulliBackwardRow64(out, x, l []float64, g float64) {
 		} else {
 			e := math.Exp(li)
 			d = x[i] - e/(1+e)
-		}
-		out[i] = g * d
-	}
-}
-
-func bernoulliBackwardRow32(out, x, l []float32, g float32) {
-	x, out = x[:len(l)], out[:len(l)]
-	for i, li := range l {
-		var d float32
-		if li >= 0 {
-			d = (x[i] - 1) + vecmath.Sigmoid32(-li)
-		} else {
-			d = x[i] - vecmath.Sigmoid32(li)
 		}
 		out[i] = g * d
 	}

@@ -20,7 +20,7 @@ type Bernoulli struct{}
 func (Bernoulli) LogProb(s *layers.Scope, x, out *G.Node) (*G.Node, error) {
 	// One fused op for the terms and their sum over features (see
 	// bernoulli_op.go).
-	lp, err := bernoulliPerSample(x, out)
+	lp, err := bernoulliPerSample(x, out, s.IsData(x))
 	if err != nil {
 		return nil, fmt.Errorf("losses.Bernoulli.LogProb: %w", err)
 	}

@@ -5,6 +5,8 @@ import (
 	"math"
 
 	"gorgonia.org/tensor"
+
+	"lowerbound.dev/internal/vecmath"
 )
 
 // updater applies one optimiser step to parameters given their gradients.
@@ -97,6 +99,7 @@ func (a *adam) step(params, grads []*tensor.Dense) (int, error) {
 	a.t++
 	c1 := 1 - math.Pow(a.beta1, float64(a.t))
 	c2 := 1 - math.Pow(a.beta2, float64(a.t))
+	k32 := adamCoeffs32(a, c1, c2)
 	for i := range params {
 		finite := true
 		switch w := params[i].Data().(type) {
@@ -106,7 +109,7 @@ func (a *adam) step(params, grads []*tensor.Dense) (int, error) {
 				a.undo(params, i-1)
 				return -1, fmt.Errorf("vae: optimiser: gradient %d does not match its parameter", i)
 			}
-			finite = adamUpdate(w, g, a.m[i].([]float32), a.v[i].([]float32), prev[i].([]float32), a, c1, c2)
+			finite = vecmath.Adam32(w, g, a.m[i].([]float32), a.v[i].([]float32), prev[i].([]float32), &k32)
 		case []float64:
 			g, ok := grads[i].Data().([]float64)
 			if !ok || len(g) != len(w) {
@@ -124,6 +127,16 @@ func (a *adam) step(params, grads []*tensor.Dense) (int, error) {
 		}
 	}
 	return -1, nil
+}
+
+// adamCoeffs32 returns the float32 scalars of a step for vecmath.Adam32,
+// which runs the float32 form of adamUpdate below operation for operation
+// (vectorised on amd64) and gives the same bits.
+func adamCoeffs32(a *adam, c1, c2 float64) vecmath.AdamCoeffs {
+	return vecmath.AdamCoeffs{
+		B1: float32(a.beta1), OB1: float32(1 - a.beta1), B2: float32(a.beta2), OB2: float32(1 - a.beta2),
+		LR: float32(a.lr), Eps: float32(a.eps), IC1: float32(1 / c1), IC2: float32(1 / c2),
+	}
 }
 
 // adamUpdate updates w in place, keeping its previous values in prev, and

@@ -204,6 +204,10 @@ func (m *Model) build(key programKey) (*program, error) {
 	if m.cols != nil {
 		encIn, p.xEnc = m.newInput(g, "x_enc", b, m.cols.EncoderWidth())
 	}
+	// No gradient with respect to the data is ever wanted: the first
+	// layer and the likelihood skip building it.
+	p.scope.MarkData(xN)
+	p.scope.MarkData(encIn)
 	if len(m.cfg.InputShape) == 3 {
 		shape := append(tensor.Shape{b}, m.cfg.InputShape...)
 		// Reshape an input through a copy: gorgonia's Reshape of an input
@@ -277,6 +281,7 @@ func (m *Model) build(key programKey) (*program, error) {
 	xRepN := xN
 	if k > 1 {
 		xRepN, p.xRep = m.newInput(g, "x_rep", k*b, f)
+		p.scope.MarkData(xRepN)
 	}
 	var logLik *G.Node // (K*B)
 	if m.cols != nil {

@@ -19,6 +19,17 @@
 // benchmarks). Their gain in the fused ops comes from fewer passes and
 // conversions, not from a faster polynomial.
 //
+// For training the package also has fast float32 kernels over whole rows:
+// BernoulliRowSum32 and BernoulliGradRow32 (the Bernoulli log-likelihood
+// of a record and its gradient with respect to the logits), TanhSlice32,
+// and Adam32 (an Adam step with its undo copy and finite check). They
+// evaluate short float32 polynomials, eight values at a time in AVX2+FMA
+// assembly on amd64 (chosen when the package loads, from
+// golang.org/x/sys/cpu) and in portable Go elsewhere; the tests check both
+// on the same machine. Their bounds, a few ulp, are stated on each and
+// checked against package math over dense sweeps (Adam32 has no
+// approximation: it rounds like the plain float32 loop).
+//
 // The functions are pure and safe for concurrent use. The package is
 // internal: the public packages (losses, layers) use it inside their ops.
 package vecmath

@@ -225,3 +225,8 @@ func Sigmoid32(x float32) float32 {
 	e := (1 + expm1Reduced(r)) * pow2(k) // e^-x, at most e^104
 	return float32(1 / (1 + e))
 }
+
+// sqrt32 returns the correctly rounded float32 square root of x: the
+// float64 root of a float32 value rounds to the same float32 as the exact
+// root (53 >= 2*24 + 2 bits, so the double rounding is innocuous).
+func sqrt32(x float32) float32 { return float32(math.Sqrt(float64(x))) }
