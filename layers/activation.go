@@ -72,6 +72,17 @@ func (a Activation) check(where, arg string) error {
 	return nil
 }
 
+// ApplyFloat32 applies the activation to every value of y, in place, with
+// the kernels of the fused Dense op (tanh, sigmoid and softplus within a
+// few ulp of the float64 functions; see internal/vecmath). Code that runs a
+// model outside the graphs (the vae package's lean inference path, a user
+// layer joining it) calls this so that both paths compute the same numbers.
+// Identity and unknown activations leave y as it is.
+func (a Activation) ApplyFloat32(y []float32) { activate32(a, y) }
+
+// ApplyFloat64 is ApplyFloat32 for float64 values.
+func (a Activation) ApplyFloat64(y []float64) { activate64(a, y) }
+
 // Apply adds the activation of x to x's graph. x must be float32 or float64.
 func (a Activation) Apply(x *G.Node) (*G.Node, error) {
 	where := "layers.Activation(" + string(a) + ").Apply"

@@ -62,36 +62,13 @@ func (a *actOp[T]) forward(_ *kernels[T], in, out, _ []T, rows int) {
 
 // activate applies a in place, with the formulas of layers.Activation.
 func activate[T float](a layers.Activation, v []T) {
-	switch a {
-	case layers.ReLU:
-		for i, x := range v {
-			v[i] = max(x, 0) // branch-free; NaN stays NaN
-		}
-	case layers.LeakyReLU:
-		s := T(layers.LeakySlope)
-		for i, x := range v {
-			if x < 0 {
-				v[i] = x * s
-			}
-		}
-	case layers.Tanh:
-		for i, x := range v {
-			v[i] = T(math.Tanh(float64(x)))
-		}
-	case layers.Sigmoid:
-		for i, x := range v {
-			v[i] = T(sigmoid(float64(x)))
-		}
-	case layers.Softplus:
-		for i, x := range v {
-			v[i] = T(softplus(float64(x)))
-		}
-	case layers.ELU:
-		for i, x := range v {
-			if x < 0 {
-				v[i] = T(layers.ELUAlpha * math.Expm1(float64(x)))
-			}
-		}
+	// The fused Dense op's kernels: one implementation of each activation
+	// for the graphs and the lean path.
+	switch v := any(v).(type) {
+	case []float32:
+		a.ApplyFloat32(v)
+	case []float64:
+		a.ApplyFloat64(v)
 	}
 }
 

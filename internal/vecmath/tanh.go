@@ -21,16 +21,28 @@ const fastTanhULP = 3
 
 // TanhSlice32 replaces every y[i] by tanh(y[i]) with the fast kernel
 // (error bound above).
+//
+// Each value's result depends on that value alone, never on its position
+// in y: with the assembly kernel, the last len%8 values also go through
+// it, in a padded block of eight, because the portable function rounds
+// differently (no fused multiply-add) and a score must not depend on how
+// records are batched.
 func TanhSlice32(y []float32) {
-	n := 0
-	if useAsm {
-		n = len(y) &^ 7
-		if n > 0 {
-			tanhAVX2(y[:n])
+	if !useAsm {
+		for i, v := range y {
+			y[i] = tanhFast32(v)
 		}
+		return
 	}
-	for i, v := range y[n:] {
-		y[n+i] = tanhFast32(v)
+	n := len(y) &^ 7
+	if n > 0 {
+		tanhAVX2(y[:n])
+	}
+	if n < len(y) {
+		var block [8]float32
+		copy(block[:], y[n:])
+		tanhAVX2(block[:])
+		copy(y[n:], block[:])
 	}
 }
 
