@@ -25,7 +25,9 @@ type DeadLetter struct {
 	File string
 	Line int64
 	// Column is the 1-based position of the offending field, 0 when the
-	// problem is the whole line; ColumnName its header name, if known.
+	// problem is the whole line or when it is found after parsing (a
+	// value beyond the model's range, found when scoring, is named by
+	// ColumnName alone); ColumnName is the field's header name, if known.
 	Column     int
 	ColumnName string
 	// Kind is a short, fixed category (see the Kind* constants), Reason

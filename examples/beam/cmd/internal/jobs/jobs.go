@@ -61,6 +61,9 @@ func Train(ctx context.Context, j TrainJob, log io.Writer) error {
 		return err
 	}
 	last := hist[len(hist)-1]
+	if j.Train.Quantile == 0 {
+		j.Train.Quantile = 0.99 // TrainModel's default
+	}
 	fmt.Fprintf(log, "trained %d epochs in %.1fs, last epoch loss %.3f; threshold %.3f nats (quantile %g of the sample's scores)\n",
 		len(hist), time.Since(t0).Seconds(), last.Loss, meta.Threshold, j.Train.Quantile)
 	if err := m.Save(j.Model); err != nil {
