@@ -45,7 +45,10 @@ type GenerateConfig struct {
 }
 
 // malformedLines are the defects the demo writes, with the id and the
-// eight feature fields. Each must become a dead letter.
+// eight feature fields. Each must become a dead letter. (A value such as
+// 1e300 is left out: it is a valid number to the sampling stage, which has
+// no model to check ranges against, and would wreck the standardisation if
+// sampled; the scoring pipeline's range check is tested separately.)
 var malformedLines = []string{
 	"%s,1.0,abc,3,4,5,6,7,8",   // not a number
 	"%s,1.0,2,,4,5,6,7,8",      // empty field
@@ -119,7 +122,7 @@ func writeDemoFile(path string, n, first, fileIndex int, cfg GenerateConfig) (er
 		id := fmt.Sprintf("r%09d", first+i)
 		demoRecord(rng, cfg.AnomalyRate, &x)
 		if b, ok := bad[i]; ok {
-			fmt.Fprintf(w, malformedLines[b%len(malformedLines)]+"\n", id)
+			fmt.Fprintf(w, malformedLines[(b+fileIndex*cfg.Malformed)%len(malformedLines)]+"\n", id)
 			continue
 		}
 		buf = append(buf[:0], id...)
