@@ -7,6 +7,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"sort"
 	"strconv"
 	"strings"
 	"testing"
@@ -17,6 +18,7 @@ import (
 	"lowerbound.dev/examples/beam/reservoir"
 	"lowerbound.dev/examples/beam/tabular"
 	"lowerbound.dev/vae"
+	"lowerbound.dev/vae/alarm"
 	"lowerbound.dev/vae/dataset"
 )
 
@@ -76,6 +78,25 @@ func trainSmall(t *testing.T, file, path string) *vae.Model {
 	m, _, err := tabular.TrainModel(context.Background(), raw, names, tabular.TrainConfig{Epochs: 2, Seed: 3, Score: tabular.ScoreConfig{K: 1, Seed: 3}})
 	if err != nil {
 		t.Fatal(err)
+	}
+	// The pipeline's threshold is the checkpoint's vae/alarm calibration:
+	// the ceil((n+1)(1-alpha))-th smallest of the n held-out scores (split
+	// conformal; Angelopoulos and Bates 2021), recomputed here from the
+	// stored scores.
+	cal, err := alarm.Get(m)
+	if err != nil {
+		t.Fatal(err)
+	}
+	meta, err := tabular.ReadMeta(m, tabular.DefaultPrefix)
+	if err != nil {
+		t.Fatal(err)
+	}
+	sc := cal.Scores()
+	sort.Float64s(sc)
+	rank := int(math.Ceil(float64(len(sc)+1) * (1 - 0.01)))
+	if cal.Alpha() != 0.01 || len(sc) != raw.Len()/5 || meta.Threshold != sc[rank-1] {
+		t.Fatalf("threshold %v, alpha %v, %d calibration scores; want the %d-th smallest of %d held-out scores, %v",
+			meta.Threshold, cal.Alpha(), len(sc), rank, raw.Len()/5, sc[rank-1])
 	}
 	if err := m.Save(path); err != nil {
 		t.Fatal(err)
@@ -366,7 +387,7 @@ func TestSampleRepeatable(t *testing.T) {
 		}
 	}
 	// The sample trains a model that the scoring pipeline can load.
-	m, _, err := tabular.TrainFromSample(context.Background(), filepath.Join(dir, "a.csv"), tabular.TrainConfig{Epochs: 1, Seed: 1})
+	m, _, err := tabular.TrainFromSample(context.Background(), filepath.Join(dir, "a.csv"), tabular.TrainConfig{Epochs: 1, Seed: 1, Alpha: 0.05}) // 50 held-out records: enough for 5% (19 needed), not for 1% (99)
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -14,6 +14,7 @@ import (
 
 	"lowerbound.dev/losses"
 	"lowerbound.dev/vae"
+	"lowerbound.dev/vae/alarm"
 	"lowerbound.dev/vae/dataset"
 )
 
@@ -158,11 +159,17 @@ func demoRecord(rng *rand.Rand, anomalyRate float64, x *[DemoFeatures]float64) {
 
 // TrainConfig configures TrainModel.
 type TrainConfig struct {
-	Epochs   int     // 0 means 20
-	Hidden   []int   // nil means 32, 16
-	Latent   int     // 0 means 3
-	Quantile float64 // of the training scores, the alarm threshold; 0 means 0.99
-	// Score is how the threshold's scores are computed; it should match
+	Epochs int   // 0 means 20
+	Hidden []int // nil means 32, 16
+	Latent int   // 0 means 3
+	// Alpha is the alarm's false-alarm rate: the threshold is the
+	// split-conformal one of vae/alarm, calibrated on CalFrac of the
+	// records held out from training. 0 means 0.01.
+	Alpha float64
+	// CalFrac is the share of records held out for calibration; 0 means
+	// 0.2.
+	CalFrac float64
+	// Score is how the calibration scores are computed; it should match
 	// how the pipeline scores.
 	Score ScoreConfig
 	Seed  uint64
@@ -170,8 +177,9 @@ type TrainConfig struct {
 
 // TrainModel standardises raw (records in the order of names), trains an
 // MLP VAE with a learned-sigma Gaussian likelihood on it and stores the
-// features, the standardisation and the threshold (the Quantile of the
-// training records' scores) in the model's metadata under DefaultPrefix.
+// features and the standardisation in the model's metadata under
+// DefaultPrefix, and the alarm calibration (vae/alarm, split conformal at
+// Alpha on the held-out records) under alarm.MetadataKey.
 func TrainModel(ctx context.Context, raw *dataset.Set, names []string, cfg TrainConfig) (*vae.Model, []vae.EpochInfo, error) {
 	if cfg.Epochs == 0 {
 		cfg.Epochs = 20
@@ -182,17 +190,28 @@ func TrainModel(ctx context.Context, raw *dataset.Set, names []string, cfg Train
 	if cfg.Latent == 0 {
 		cfg.Latent = 3
 	}
-	if cfg.Quantile == 0 {
-		cfg.Quantile = 0.99
+	if cfg.Alpha == 0 {
+		cfg.Alpha = 0.01
+	}
+	if cfg.CalFrac == 0 {
+		cfg.CalFrac = 0.2
 	}
 	if raw == nil || len(names) != raw.Features() {
 		return nil, nil, fmt.Errorf("tabular.TrainModel: %d names for the data's features", len(names))
 	}
-	z, err := dataset.FitStandardizer(raw)
+	calRaw, trainRaw, err := raw.Split(cfg.CalFrac, cfg.Seed)
 	if err != nil {
 		return nil, nil, err
 	}
-	data, err := z.Apply(raw)
+	z, err := dataset.FitStandardizer(trainRaw)
+	if err != nil {
+		return nil, nil, err
+	}
+	data, err := z.Apply(trainRaw)
+	if err != nil {
+		return nil, nil, err
+	}
+	calData, err := z.Apply(calRaw)
 	if err != nil {
 		return nil, nil, err
 	}
@@ -208,15 +227,18 @@ func TrainModel(ctx context.Context, raw *dataset.Set, names []string, cfg Train
 	if err != nil {
 		return nil, hist, err
 	}
-	scores, err := m.Score(ctx, data, vae.ScoreOptions{K: cfg.Score.K, Seed: cfg.Score.Seed, AtPosteriorMean: cfg.Score.AtPosteriorMean})
+	scores, err := m.Score(ctx, calData, vae.ScoreOptions{K: cfg.Score.K, Seed: cfg.Score.Seed, AtPosteriorMean: cfg.Score.AtPosteriorMean})
 	if err != nil {
 		return nil, hist, err
 	}
-	th, err := Quantile(scores, cfg.Quantile)
+	cal, err := alarm.Calibrate(scores, cfg.Alpha)
 	if err != nil {
 		return nil, hist, err
 	}
-	if err := SetMeta(m, DefaultPrefix, Meta{Features: names, Standardizer: z, Threshold: th}); err != nil {
+	if err := alarm.Put(m, cal); err != nil {
+		return nil, hist, err
+	}
+	if err := SetMeta(m, DefaultPrefix, Meta{Features: names, Standardizer: z, Threshold: math.NaN()}); err != nil {
 		return nil, hist, err
 	}
 	return m, hist, nil

@@ -14,6 +14,7 @@ import (
 	"gorgonia.org/tensor"
 
 	"lowerbound.dev/vae"
+	"lowerbound.dev/vae/alarm"
 	"lowerbound.dev/vae/dataset"
 )
 
@@ -31,8 +32,8 @@ const (
 type Meta struct {
 	Features     []string
 	Standardizer dataset.Standardizer
-	// Threshold is the alarm threshold in nats; NaN when the checkpoint
-	// has none.
+	// Threshold is the alarm threshold in nats: the vae/alarm
+	// calibration's when the checkpoint has one; NaN when it has none.
 	Threshold float64
 }
 
@@ -86,9 +87,17 @@ func ReadMeta(m *vae.Model, prefix string) (Meta, error) {
 	if len(meta.Standardizer.Mean) != m.Features() {
 		return meta, fmt.Errorf("tabular: checkpoint metadata %s has %d features, the model %d", key(metaStandardizer), len(meta.Standardizer.Mean), m.Features())
 	}
-	// Hook: when the SDK ships a calibration of the alarm threshold (a
-	// vae/alarm package storing its own metadata), read it here; until
-	// then the threshold is the plain number under <prefix>.threshold.
+	// The alarm threshold is the vae/alarm calibration when the
+	// checkpoint has one (the definition the telemetry example and the
+	// scoring server use too); otherwise a plain number under
+	// <prefix>.threshold, if any.
+	switch cal, err := alarm.Get(m); {
+	case err == nil:
+		meta.Threshold = cal.Threshold()
+		return meta, nil
+	case !errors.Is(err, alarm.ErrNoCalibration):
+		return meta, fmt.Errorf("tabular: %w", err)
+	}
 	if raw, ok := extra[key(metaThreshold)]; ok {
 		t, err := strconv.ParseFloat(raw, 64)
 		if err != nil || math.IsNaN(t) {

@@ -31,7 +31,7 @@ func main() {
 	flag.StringVar(&cfg.Work, "work", "out/beam/train", "folder for the sample file and the dead letters")
 	flag.IntVar(&cfg.Train.Epochs, "epochs", 20, "training epochs")
 	flag.IntVar(&cfg.Train.Score.K, "k", 1, "importance samples of the scores the threshold is computed from (score with the same -k)")
-	flag.Float64Var(&cfg.Train.Quantile, "quantile", 0.99, "quantile of the sample's scores used as the alarm threshold")
+	flag.Float64Var(&cfg.Train.Alpha, "alpha", 0.01, "false-alarm rate of the alarm threshold (split conformal, vae/alarm, on a held-out part of the sample)")
 	flag.Parse()
 	beam.Init()
 	cfg.Columns = strings.Split(*columns, ",")

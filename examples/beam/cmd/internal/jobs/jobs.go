@@ -61,11 +61,12 @@ func Train(ctx context.Context, j TrainJob, log io.Writer) error {
 		return err
 	}
 	last := hist[len(hist)-1]
-	if j.Train.Quantile == 0 {
-		j.Train.Quantile = 0.99 // TrainModel's default
+	alpha := j.Train.Alpha
+	if alpha == 0 {
+		alpha = 0.01 // TrainModel's default
 	}
-	fmt.Fprintf(log, "trained %d epochs in %.1fs, last epoch loss %.3f; threshold %.3f nats (quantile %g of the sample's scores)\n",
-		len(hist), time.Since(t0).Seconds(), last.Loss, meta.Threshold, j.Train.Quantile)
+	fmt.Fprintf(log, "trained %d epochs in %.1fs, last epoch loss %.3f; alarm threshold %.3f nats (split conformal, false-alarm rate %g, on records held out from training)\n",
+		len(hist), time.Since(t0).Seconds(), last.Loss, meta.Threshold, alpha)
 	if err := m.Save(j.Model); err != nil {
 		return err
 	}
