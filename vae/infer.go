@@ -169,12 +169,21 @@ func (m *Model) checkLabels(where string, labels []int, n int) error {
 // program's batch) and their labels into p's input tensors, repeating them
 // K times where the program needs that.
 func (m *Model) fillInputs(p *program, data *dataset.Set, idx []int) error {
-	b, k := p.key.batch, p.key.k
 	if p.x != nil {
 		p.x.Zero()
 		if err := fillPrefix(p.x, data, idx, m.width); err != nil {
 			return err
 		}
+	}
+	return m.finishInputs(p, data, idx)
+}
+
+// finishInputs fills what the program needs besides x once the batch's
+// records are in x (zero beyond them): the model-input layout of a columns
+// model, the K-fold copy of x and the labels.
+func (m *Model) finishInputs(p *program, data *dataset.Set, idx []int) error {
+	b, k := p.key.batch, p.key.k
+	if p.x != nil {
 		if p.xEnc != nil {
 			// Padding rows of a columns model are all missing, so
 			// they add exactly 0 (a zero could be outside a column's

@@ -14,7 +14,6 @@ import (
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
 
-	"lowerbound.dev/layers"
 	"lowerbound.dev/vae/dataset"
 	"lowerbound.dev/vae/schedule"
 )
@@ -257,80 +256,88 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 		}
 		var sumLoss, sumRec, sumKL float64
 		var beta float64
-		for _, idx := range batches {
-			if err := ctx.Err(); err != nil {
-				return history, err
-			}
-			t0 := time.Now()
-			if err := m.fillInputs(p, data, idx); err != nil {
-				return history, err
-			}
-			if err := layers.FillNormal(noise, p.eps); err != nil {
-				return history, err
-			}
-			p.mask.Zero()
-			for i := range idx {
-				setAt(p.mask, i, 1)
-			}
-			beta = cfg.Beta.At(step)
-			if beta < 0 || math.IsInf(beta, 0) {
-				// A user schedule without Validate; NaN is left to the
-				// non-finite check of the loss.
-				return history, configError("Beta", "At(%d) = %v, want a finite value >= 0", step, beta)
-			}
-			if err := setScalar(p.invCount, 1/float64(len(idx))); err != nil {
-				return history, err
-			}
-			if err := setScalar(p.beta, beta); err != nil {
-				return history, err
-			}
-			if p.capTarget != nil {
-				if err := setScalar(p.capTarget, cfg.Capacity.Target(step)); err != nil {
-					return history, err
+		feed := newFeeder(data, batches, m.width, p.x, p.eps, noise)
+		err = func() error {
+			defer feed.close()
+			for _, idx := range batches {
+				if err := ctx.Err(); err != nil {
+					return err
 				}
-			}
-			if err := p.run(); err != nil {
-				return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
-			}
-			loss, rec, kl := p.scalarValue(p.loss), -p.scalarValue(p.recon), p.scalarValue(p.klAvg)
-			for _, term := range []struct {
-				name string
-				v    float64
-			}{{"reconstruction", rec}, {"KL", kl}, {"loss", loss}} {
-				if math.IsNaN(term.v) || math.IsInf(term.v, 0) {
-					return history, fmt.Errorf("vae.Train: epoch %d, step %d: the %s term is %v: %w", epoch, step, term.name, term.v, ErrNonFinite)
+				t0 := time.Now()
+				if err := feed.next(p.x, p.eps); err != nil {
+					return err
 				}
+				if err := m.finishInputs(p, data, idx); err != nil {
+					return err
+				}
+				p.mask.Zero()
+				for i := range idx {
+					setAt(p.mask, i, 1)
+				}
+				beta = cfg.Beta.At(step)
+				if beta < 0 || math.IsInf(beta, 0) {
+					// A user schedule without Validate; NaN is left to the
+					// non-finite check of the loss.
+					return configError("Beta", "At(%d) = %v, want a finite value >= 0", step, beta)
+				}
+				if err := setScalar(p.invCount, 1/float64(len(idx))); err != nil {
+					return err
+				}
+				if err := setScalar(p.beta, beta); err != nil {
+					return err
+				}
+				if p.capTarget != nil {
+					if err := setScalar(p.capTarget, cfg.Capacity.Target(step)); err != nil {
+						return err
+					}
+				}
+				if err := p.run(); err != nil {
+					return fmt.Errorf("vae.Train: step %d: %w", step, err)
+				}
+				loss, rec, kl := p.scalarValue(p.loss), -p.scalarValue(p.recon), p.scalarValue(p.klAvg)
+				for _, term := range []struct {
+					name string
+					v    float64
+				}{{"reconstruction", rec}, {"KL", kl}, {"loss", loss}} {
+					if math.IsNaN(term.v) || math.IsInf(term.v, 0) {
+						return fmt.Errorf("vae.Train: epoch %d, step %d: the %s term is %v: %w", epoch, step, term.name, term.v, ErrNonFinite)
+					}
+				}
+				if err := gradients(p.paramNodes, grads); err != nil {
+					return fmt.Errorf("vae.Train: step %d: %w", step, err)
+				}
+				if cfg.ClipNorm > 0 {
+					clipGradients(grads, cfg.ClipNorm)
+				}
+				bad, err := opt.step(weights, grads)
+				if err != nil {
+					return fmt.Errorf("vae.Train: step %d: %w", step, err)
+				}
+				if bad >= 0 {
+					// The updater has put every parameter back as it was
+					// after the last good step.
+					return fmt.Errorf("vae.Train: epoch %d, step %d: the update of parameter %q is not finite: %w",
+						epoch, step, p.scope.Params()[bad].Name, ErrNonFinite)
+				}
+				// gorgonia adds each run's gradients to what the gradient
+				// tensors hold, so they are cleared for the next step.
+				for _, g := range grads {
+					g.Zero()
+				}
+				c := float64(len(idx))
+				sumLoss += loss * c
+				sumRec += rec * c
+				sumKL += kl * c
+				if cfg.OnStep != nil {
+					cfg.OnStep(StepInfo{Epoch: epoch, Step: step, Loss: loss, Reconstruction: rec, KL: kl, Beta: beta,
+						SamplesPerSec: c / time.Since(t0).Seconds()})
+				}
+				step++
 			}
-			if err := gradients(p.paramNodes, grads); err != nil {
-				return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
-			}
-			if cfg.ClipNorm > 0 {
-				clipGradients(grads, cfg.ClipNorm)
-			}
-			bad, err := opt.step(weights, grads)
-			if err != nil {
-				return history, fmt.Errorf("vae.Train: step %d: %w", step, err)
-			}
-			if bad >= 0 {
-				// The updater has put every parameter back as it was
-				// after the last good step.
-				return history, fmt.Errorf("vae.Train: epoch %d, step %d: the update of parameter %q is not finite: %w",
-					epoch, step, p.scope.Params()[bad].Name, ErrNonFinite)
-			}
-			// gorgonia adds each run's gradients to what the gradient
-			// tensors hold, so they are cleared for the next step.
-			for _, g := range grads {
-				g.Zero()
-			}
-			c := float64(len(idx))
-			sumLoss += loss * c
-			sumRec += rec * c
-			sumKL += kl * c
-			if cfg.OnStep != nil {
-				cfg.OnStep(StepInfo{Epoch: epoch, Step: step, Loss: loss, Reconstruction: rec, KL: kl, Beta: beta,
-					SamplesPerSec: c / time.Since(t0).Seconds()})
-			}
-			step++
+			return nil
+		}()
+		if err != nil {
+			return history, err
 		}
 		dur := time.Since(start)
 		info := EpochInfo{Epoch: epoch, Steps: len(batches), Loss: sumLoss / float64(n), Reconstruction: sumRec / float64(n),

@@ -370,3 +370,32 @@ func TestSplitDirection(t *testing.T) {
 		t.Errorf("10×10×10: split into %d parts, want 1 (below parMin)", parts)
 	}
 }
+
+// The engine keeps products below its split minimum on one goroutine
+// (DefaultSplitMin unless WithSplitMin says otherwise) and rejects a
+// negative minimum.
+func TestEngineSplitMin(t *testing.T) {
+	e, err := New(WithThreads(2))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got := e.threadsFor(100, 784, 200); got != 1 {
+		t.Errorf("default engine: 100×784×200 (15.7M multiply-adds) on %d goroutines, want 1", got)
+	}
+	if got := e.threadsFor(100, 784, 400); got != 2 {
+		t.Errorf("default engine: 100×784×400 (31.4M multiply-adds) on %d goroutines, want 2", got)
+	}
+	if d := Default(); d.threadsFor(100, 200, 200) != 1 {
+		t.Errorf("Default(): 100×200×200 split")
+	}
+	e, err = New(WithThreads(2), WithSplitMin(1<<20))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got := e.threadsFor(100, 200, 200); got != 2 {
+		t.Errorf("WithSplitMin(1<<20): 100×200×200 on %d goroutines, want 2", got)
+	}
+	if _, err := New(WithSplitMin(-1)); err == nil {
+		t.Error("WithSplitMin(-1) accepted")
+	}
+}
