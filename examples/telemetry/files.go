@@ -92,22 +92,11 @@ func runFiles(ctx context.Context, cfg Config) (FilesResult, error) {
 	fmt.Fprintf(log, "%s: %d records of %d columns, %d readings missing; train %d, validation %d, calibration %d\n",
 		cfg.TrainFile, n, len(sc.Columns), all.Missing(), res.TrainRecords, res.ValRecords, res.CalRecords)
 
-	z, err := dataset.FitStandardizerSchema(trainRaw, sc)
+	z, sets, err := standardize(sc, trainRaw, valRaw, calRaw)
 	if err != nil {
 		return res, err
 	}
-	train, err := z.Apply(trainRaw)
-	if err != nil {
-		return res, err
-	}
-	val, err := z.Apply(valRaw)
-	if err != nil {
-		return res, err
-	}
-	calSet, err := z.Apply(calRaw)
-	if err != nil {
-		return res, err
-	}
+	train, val, calSet := sets[0], sets[1], sets[2]
 	cols, err := vae.ColumnsFromSchema(sc, true)
 	if err != nil {
 		return res, err

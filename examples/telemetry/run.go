@@ -53,6 +53,23 @@ func putScoreOptions(m *vae.Model, k int, seed uint64) error {
 	return m.SetExtra(extraScoreSeed, strconv.FormatUint(seed, 10))
 }
 
+// standardize fits the standardisation of the real columns of sc on the
+// observed readings of the first set (the training records) and applies it
+// to every set.
+func standardize(sc dataset.Schema, sets ...*dataset.Set) (dataset.Standardizer, []*dataset.Set, error) {
+	z, err := dataset.FitStandardizerSchema(sets[0], sc)
+	if err != nil {
+		return z, nil, err
+	}
+	out := make([]*dataset.Set, len(sets))
+	for i, s := range sets {
+		if out[i], err = z.Apply(s); err != nil {
+			return z, nil, err
+		}
+	}
+	return z, out, nil
+}
+
 // saveCheckpoint writes out/model.safetensors: the weights and model
 // description, the schema and standardisation that read and scale raw
 // records, the alarm calibration and the K and seed it was scored with. It
@@ -370,22 +387,11 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 	// 2. Standardise the sensors with statistics of the training records
 	// only (observed readings; the mode and the starts stay raw).
 	schema := fleet.MixedSchema()
-	z, err := dataset.FitStandardizerSchema(trainRaw, schema)
+	z, sets, err := standardize(schema, trainRaw, valRaw, calRaw)
 	if err != nil {
 		return res, err
 	}
-	train, err := z.Apply(trainRaw)
-	if err != nil {
-		return res, err
-	}
-	val, err := z.Apply(valRaw)
-	if err != nil {
-		return res, err
-	}
-	calSet, err := z.Apply(calRaw)
-	if err != nil {
-		return res, err
-	}
+	train, val, calSet := sets[0], sets[1], sets[2]
 
 	// 3. Model: a VAE conditioned on the station type over mixed columns
 	// (Nazabal et al. 2020): Gaussian sensors, a categorical mode and a
