@@ -193,9 +193,9 @@ func (op *actGradOp) Do(vals ...G.Value) (G.Value, error) {
 	op.out = keep(op.out, y.Dtype(), y.Shape()[0], y.Shape()[1])
 	switch d := op.out.Data().(type) {
 	case []float32:
-		actGrad32(op.act, d, y.Data().([]float32), g.Data().([]float32))
+		actGrad(op.act, d, y.Data().([]float32), g.Data().([]float32))
 	case []float64:
-		actGrad64(op.act, d, y.Data().([]float64), g.Data().([]float64))
+		actGrad(op.act, d, y.Data().([]float64), g.Data().([]float64))
 	}
 	return op.out, nil
 }
@@ -496,12 +496,12 @@ func activate64(a Activation, y []float64) {
 }
 
 // actGrad writes g ⊙ act'(y) into d, y being the activation's output.
-func actGrad32(a Activation, d, y, g []float32) {
+func actGrad[T float32 | float64](a Activation, d, y, g []T) {
 	y, g = y[:len(d)], g[:len(d)]
 	switch a {
 	case ReLU:
 		for i, v := range y {
-			var m float32
+			var m T
 			if nonNegative(v) {
 				m = 1
 			}
@@ -509,7 +509,7 @@ func actGrad32(a Activation, d, y, g []float32) {
 		}
 	case LeakyReLU:
 		for i, v := range y {
-			var m float32 = LeakySlope
+			m := T(LeakySlope)
 			if nonNegative(v) {
 				m = 1
 			}
@@ -526,51 +526,7 @@ func actGrad32(a Activation, d, y, g []float32) {
 	case Softplus:
 		for i, v := range y {
 			// sigmoid(x) = 1 - e^-softplus(x), exact where y is tiny too.
-			d[i] = g[i] * float32(-math.Expm1(-float64(v)))
-		}
-	case ELU:
-		for i, v := range y {
-			m := v + ELUAlpha
-			if nonNegative(v) {
-				m = 1
-			}
-			d[i] = g[i] * m
-		}
-	default:
-		copy(d, g)
-	}
-}
-
-func actGrad64(a Activation, d, y, g []float64) {
-	y, g = y[:len(d)], g[:len(d)]
-	switch a {
-	case ReLU:
-		for i, v := range y {
-			var m float64
-			if nonNegative(v) {
-				m = 1
-			}
-			d[i] = g[i] * m
-		}
-	case LeakyReLU:
-		for i, v := range y {
-			m := LeakySlope
-			if nonNegative(v) {
-				m = 1
-			}
-			d[i] = g[i] * m
-		}
-	case Tanh:
-		for i, v := range y {
-			d[i] = g[i] * (1 - v*v)
-		}
-	case Sigmoid:
-		for i, v := range y {
-			d[i] = g[i] * (v * (1 - v))
-		}
-	case Softplus:
-		for i, v := range y {
-			d[i] = g[i] * -math.Expm1(-v)
+			d[i] = g[i] * T(-math.Expm1(-float64(v)))
 		}
 	case ELU:
 		for i, v := range y {
