@@ -148,16 +148,8 @@ func runFiles(ctx context.Context, cfg Config) (FilesResult, error) {
 	if err != nil {
 		return res, err
 	}
-	scaled, err := z.Apply(raw)
-	if err != nil {
+	if res.ReloadMaxDiff, err = reloadDiff(ctx, m, z, raw, scores, cfg.K, cfg.Seed); err != nil {
 		return res, err
-	}
-	direct, err := m.Score(ctx, scaled, vae.ScoreOptions{K: cfg.K, Seed: cfg.Seed})
-	if err != nil {
-		return res, err
-	}
-	for i := range direct {
-		res.ReloadMaxDiff = math.Max(res.ReloadMaxDiff, math.Abs(direct[i]-scores[i]))
 	}
 	res.Scores = scores
 	if res.Alarms, err = s.cal.Flags(scores); err != nil {

@@ -70,6 +70,25 @@ func standardize(sc dataset.Schema, sets ...*dataset.Set) (dataset.Standardizer,
 	return z, out, nil
 }
 
+// reloadDiff scores raw with the trained model m in memory, standardised
+// by z, and returns the largest difference from scores, which came from the
+// model read back from its checkpoint: 0 when the round trip is exact.
+func reloadDiff(ctx context.Context, m *vae.Model, z dataset.Standardizer, raw *dataset.Set, scores []float64, k int, seed uint64) (float64, error) {
+	scaled, err := z.Apply(raw)
+	if err != nil {
+		return 0, err
+	}
+	direct, err := m.Score(ctx, scaled, vae.ScoreOptions{K: k, Seed: seed})
+	if err != nil {
+		return 0, err
+	}
+	var d float64
+	for i := range direct {
+		d = math.Max(d, math.Abs(direct[i]-scores[i]))
+	}
+	return d, nil
+}
+
 // saveCheckpoint writes out/model.safetensors: the weights and model
 // description, the schema and standardisation that read and scale raw
 // records, the alarm calibration and the K and seed it was scored with. It
@@ -474,16 +493,8 @@ func run(ctx context.Context, cfg Config) (Result, error) {
 		return res, err
 	}
 	// The round trip must not change a single score, nor the alarms.
-	test, err := z.Apply(testRaw)
-	if err != nil {
+	if res.ReloadMaxDiff, err = reloadDiff(ctx, m, z, testRaw, scores, cfg.K, cfg.Seed); err != nil {
 		return res, err
-	}
-	direct, err := m.Score(ctx, test, vae.ScoreOptions{K: cfg.K, Seed: cfg.Seed})
-	if err != nil {
-		return res, err
-	}
-	for i := range scores {
-		res.ReloadMaxDiff = math.Max(res.ReloadMaxDiff, math.Abs(scores[i]-direct[i]))
 	}
 	if scorer.cal.Threshold() != res.Threshold || scorer.cal.N() != res.Calibration.N() {
 		return res, fmt.Errorf("checkpoint calibration (threshold %v, n %d) differs from (%v, %d)",
