@@ -83,6 +83,16 @@ func (a Activation) ApplyFloat32(y []float32) { activate32(a, y) }
 // ApplyFloat64 is ApplyFloat32 for float64 values.
 func (a Activation) ApplyFloat64(y []float64) { activate64(a, y) }
 
+// GradFloat32 sets d[i] = g[i] * act'(x[i]), the gradient through the
+// activation, from its output y[i] = act(x[i]) alone; the fused Dense op's
+// backward pass uses the same function (see dense_op.go for how each
+// derivative is had from the output). d may be g. y and g must be at least
+// as long as d. Identity and unknown activations copy g.
+func (a Activation) GradFloat32(d, y, g []float32) { actGrad(a, d, y, g) }
+
+// GradFloat64 is GradFloat32 for float64 values.
+func (a Activation) GradFloat64(d, y, g []float64) { actGrad(a, d, y, g) }
+
 // Apply adds the activation of x to x's graph. x must be float32 or float64.
 func (a Activation) Apply(x *G.Node) (*G.Node, error) {
 	where := "layers.Activation(" + string(a) + ").Apply"

@@ -90,12 +90,16 @@ func FillNormal(rng *rand.Rand, t *tensor.Dense) error {
 	if rng == nil {
 		return argError("layers.FillNormal", "rng", "nil")
 	}
-	switch data := t.Data().(type) {
-	case []float64:
+	// Float64s and Float32s, not Data: Data boxes the slice, an allocation
+	// per call, and the trainer fills noise at every step.
+	switch t.Dtype() {
+	case tensor.Float64:
+		data := t.Float64s()
 		for i := range data {
 			data[i] = rng.NormFloat64()
 		}
-	case []float32:
+	case tensor.Float32:
+		data := t.Float32s()
 		for i := range data {
 			data[i] = float32(rng.NormFloat64())
 		}

@@ -345,12 +345,7 @@ func (op *bernoulliRowsOp) Do(vals ...G.Value) (G.Value, error) {
 	case []float64:
 		xs, ls := in[0].Data().([]float64), l.Data().([]float64)
 		for r := 0; r < n; r++ {
-			var acc float64
-			xr, lr := xs[r*f:(r+1)*f], ls[r*f:(r+1)*f]
-			for i, li := range lr {
-				acc += (xr[i]*li - math.Max(li, 0)) - math.Log1p(math.Exp(-math.Abs(li)))
-			}
-			s[r] = acc
+			s[r] = vecmath.BernoulliRowSum64(xs[r*f:(r+1)*f], ls[r*f:(r+1)*f])
 		}
 	case []float32:
 		xs, ls := in[0].Data().([]float32), l.Data().([]float32)
@@ -449,7 +444,7 @@ func (op *bernoulliRowsGradOp) Do(vals ...G.Value) (G.Value, error) {
 				}
 				continue
 			}
-			bernoulliBackwardRow64(o[lo:hi], xs[lo:hi], ls[lo:hi], gr)
+			vecmath.BernoulliGradRow64(o[lo:hi], xs[lo:hi], ls[lo:hi], gr)
 		}
 	case []float32:
 		xs, ls, gs := in[0].Data().([]float32), l.Data().([]float32), g.Data().([]float32)
@@ -467,21 +462,6 @@ func (op *bernoulliRowsGradOp) Do(vals ...G.Value) (G.Value, error) {
 		return nil, fmt.Errorf("losses: Bernoulli gradient: dtype %v is not float32 or float64", l.Dtype())
 	}
 	return op.out, nil
-}
-
-func bernoulliBackwardRow64(out, x, l []float64, g float64) {
-	x, out = x[:len(l)], out[:len(l)]
-	for i, li := range l {
-		var d float64
-		if li >= 0 {
-			e := math.Exp(-li)
-			d = (x[i] - 1) + e/(1+e)
-		} else {
-			e := math.Exp(li)
-			d = x[i] - e/(1+e)
-		}
-		out[i] = g * d
-	}
 }
 
 func (*bernoulliRowsGradOp) DiffWRT(inputs int) []bool { return make([]bool, inputs) }

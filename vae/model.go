@@ -124,6 +124,9 @@ type Model struct {
 	// graphs otherwise; tests clear it to run the graph path.
 	lean    *leanPlan
 	leanWhy error
+	// graphTrain makes Train use the graphs even when the lean training
+	// path could run the model (set by tests that compare the two).
+	graphTrain bool
 
 	extra map[string]string
 }

@@ -21,6 +21,106 @@ import (
 // stops there.
 type updater interface {
 	step(params, grads []*tensor.Dense) (bad int, err error)
+	// stepParts is step with the work dealt out to parts workers (worker
+	// p takes the p-th of parts equal runs of every parameter's values);
+	// run calls its argument once for each worker, serially or at once.
+	// The result does not depend on parts: each value's update reads only
+	// its own state.
+	stepParts(params, grads []*tensor.Dense, parts int, run func(func(part int))) (bad int, err error)
+}
+
+// stepper is what an updater does for one step: prepare checks the
+// arguments and readies the state (once per step, before any update);
+// update changes values [lo, hi) of parameter i and reports whether every
+// new value is finite.
+type stepper interface {
+	prepare(params, grads []*tensor.Dense) error
+	update(i, lo, hi int, param, grad *tensor.Dense) bool
+	undoAll(params []*tensor.Dense)
+}
+
+// partRange returns the part-th of parts runs of n values, cut at
+// multiples of 16 values (whole vectors for the kernels).
+func partRange(n, part, parts int) (lo, hi int) {
+	cut := func(p int) int {
+		if p == parts {
+			return n
+		}
+		return min(n, (n*p/parts)&^15)
+	}
+	return cut(part), cut(part + 1)
+}
+
+// partRunner holds one step's arguments for its workers, so that handing
+// the work out allocates nothing: fn is r.work, bound once.
+type partRunner struct {
+	u             stepper
+	params, grads []*tensor.Dense
+	parts         int
+	bads          []int // per worker: its first parameter at fault, or -1
+	fn            func(part int)
+}
+
+func (r *partRunner) work(part int) {
+	first := -1
+	for i, p := range r.params {
+		lo, hi := partRange(p.Size(), part, r.parts)
+		if lo < hi && !r.u.update(i, lo, hi, p, r.grads[i]) && first < 0 {
+			first = i
+		}
+	}
+	r.bads[part] = first
+}
+
+// runSteps is stepParts for a stepper. If any parameter's update is not
+// finite, every parameter is put back and the first such index returned.
+func runSteps(u stepper, params, grads []*tensor.Dense, parts int, run func(func(part int)), r *partRunner) (int, error) {
+	if err := u.prepare(params, grads); err != nil {
+		return -1, err
+	}
+	if cap(r.bads) < parts {
+		r.bads = make([]int, parts)
+	}
+	if r.fn == nil {
+		r.fn = r.work
+	}
+	r.u, r.params, r.grads, r.parts, r.bads = u, params, grads, parts, r.bads[:parts]
+	if run == nil || parts == 1 {
+		for part := 0; part < parts; part++ {
+			r.work(part)
+		}
+	} else {
+		run(r.fn)
+	}
+	r.params, r.grads = nil, nil
+	bad := -1
+	for _, b := range r.bads {
+		if b >= 0 && (bad < 0 || b < bad) {
+			bad = b
+		}
+	}
+	if bad >= 0 {
+		u.undoAll(params)
+	}
+	return bad, nil
+}
+
+// checkGrads reports a gradient that does not match its parameter.
+func checkGrads(params, grads []*tensor.Dense) error {
+	if len(grads) != len(params) {
+		return fmt.Errorf("vae: optimiser: %d parameters and %d gradients", len(params), len(grads))
+	}
+	// Dtype and Size rather than Data: Data boxes the slice (an
+	// allocation per call), and a steady-state step allocates nothing.
+	for i, p := range params {
+		if dt := p.Dtype(); dt != tensor.Float32 && dt != tensor.Float64 {
+			return fmt.Errorf("vae: optimiser: parameter %d has dtype %v", i, dt)
+		}
+		if grads[i].Dtype() != p.Dtype() || grads[i].Size() != p.Size() {
+			return fmt.Errorf("vae: optimiser: gradient %d does not match its parameter", i)
+		}
+	}
+	return nil
 }
 
 // shadow holds the values the parameters had before the current step.
@@ -45,9 +145,9 @@ func (s *shadow) buffers(params []*tensor.Dense) []any {
 	return s.prev
 }
 
-// undo copies the shadow of parameters 0..last back into them.
-func (s *shadow) undo(params []*tensor.Dense, last int) {
-	for i := 0; i <= last; i++ {
+// undoAll copies the shadow of every parameter back into it.
+func (s *shadow) undoAll(params []*tensor.Dense) {
+	for i := range params {
 		switch w := params[i].Data().(type) {
 		case []float32:
 			copy(w, s.prev[i].([]float32))
@@ -77,11 +177,27 @@ type adam struct {
 	t                     int
 	m, v                  []any // []float32 or []float64 per parameter
 	shadow
+	// this step's
+	prev   []any
+	c1, c2 float64
+	k32    vecmath.AdamCoeffs
+	runner partRunner
 }
 
 func (a *adam) step(params, grads []*tensor.Dense) (int, error) {
-	if len(grads) != len(params) || (a.m != nil && len(a.m) != len(params)) {
-		return -1, fmt.Errorf("vae: optimiser: %d parameters and %d gradients, want %d", len(params), len(grads), len(a.m))
+	return a.stepParts(params, grads, 1, nil)
+}
+
+func (a *adam) stepParts(params, grads []*tensor.Dense, parts int, run func(func(int))) (int, error) {
+	return runSteps(a, params, grads, parts, run, &a.runner)
+}
+
+func (a *adam) prepare(params, grads []*tensor.Dense) error {
+	if a.m != nil && len(a.m) != len(params) {
+		return fmt.Errorf("vae: optimiser: %d parameters, want %d", len(params), len(a.m))
+	}
+	if err := checkGrads(params, grads); err != nil {
+		return err
 	}
 	if a.m == nil {
 		a.m = make([]any, len(params))
@@ -95,38 +211,19 @@ func (a *adam) step(params, grads []*tensor.Dense) (int, error) {
 			}
 		}
 	}
-	prev := a.buffers(params)
+	a.prev = a.buffers(params)
 	a.t++
-	c1 := 1 - math.Pow(a.beta1, float64(a.t))
-	c2 := 1 - math.Pow(a.beta2, float64(a.t))
-	k32 := adamCoeffs32(a, c1, c2)
-	for i := range params {
-		finite := true
-		switch w := params[i].Data().(type) {
-		case []float32:
-			g, ok := grads[i].Data().([]float32)
-			if !ok || len(g) != len(w) {
-				a.undo(params, i-1)
-				return -1, fmt.Errorf("vae: optimiser: gradient %d does not match its parameter", i)
-			}
-			finite = vecmath.Adam32(w, g, a.m[i].([]float32), a.v[i].([]float32), prev[i].([]float32), &k32)
-		case []float64:
-			g, ok := grads[i].Data().([]float64)
-			if !ok || len(g) != len(w) {
-				a.undo(params, i-1)
-				return -1, fmt.Errorf("vae: optimiser: gradient %d does not match its parameter", i)
-			}
-			finite = adamUpdate(w, g, a.m[i].([]float64), a.v[i].([]float64), prev[i].([]float64), a, c1, c2)
-		default:
-			a.undo(params, i-1)
-			return -1, fmt.Errorf("vae: optimiser: parameter %d has dtype %v", i, params[i].Dtype())
-		}
-		if !finite {
-			a.undo(params, i)
-			return i, nil
-		}
+	a.c1 = 1 - math.Pow(a.beta1, float64(a.t))
+	a.c2 = 1 - math.Pow(a.beta2, float64(a.t))
+	a.k32 = adamCoeffs32(a, a.c1, a.c2)
+	return nil
+}
+
+func (a *adam) update(i, lo, hi int, param, grad *tensor.Dense) bool {
+	if param.Dtype() == tensor.Float32 {
+		return vecmath.Adam32(param.Float32s()[lo:hi], grad.Float32s()[lo:hi], a.m[i].([]float32)[lo:hi], a.v[i].([]float32)[lo:hi], a.prev[i].([]float32)[lo:hi], &a.k32)
 	}
-	return -1, nil
+	return adamUpdate(param.Float64s()[lo:hi], grad.Float64s()[lo:hi], a.m[i].([]float64)[lo:hi], a.v[i].([]float64)[lo:hi], a.prev[i].([]float64)[lo:hi], a, a.c1, a.c2)
 }
 
 // adamCoeffs32 returns the float32 scalars of a step for vecmath.Adam32,
@@ -171,50 +268,41 @@ type sgd struct {
 	lr, momentum float64
 	vel          [][]float64
 	shadow
+	prev   []any // this step's
+	runner partRunner
 }
 
 func (s *sgd) step(params, grads []*tensor.Dense) (int, error) {
-	if len(grads) != len(params) {
-		return -1, fmt.Errorf("vae: optimiser: %d parameters and %d gradients", len(params), len(grads))
+	return s.stepParts(params, grads, 1, nil)
+}
+
+func (s *sgd) stepParts(params, grads []*tensor.Dense, parts int, run func(func(int))) (int, error) {
+	return runSteps(s, params, grads, parts, run, &s.runner)
+}
+
+func (s *sgd) prepare(params, grads []*tensor.Dense) error {
+	if err := checkGrads(params, grads); err != nil {
+		return err
 	}
-	prev := s.buffers(params)
+	s.prev = s.buffers(params)
 	if s.momentum > 0 && s.vel == nil {
 		s.vel = make([][]float64, len(params))
 		for i, p := range params {
 			s.vel[i] = make([]float64, p.Size())
 		}
 	}
-	for i := range params {
-		var vel []float64
-		if s.vel != nil {
-			vel = s.vel[i]
-		}
-		finite := true
-		switch w := params[i].Data().(type) {
-		case []float32:
-			g, ok := grads[i].Data().([]float32)
-			if !ok || len(g) != len(w) {
-				s.undo(params, i-1)
-				return -1, fmt.Errorf("vae: optimiser: gradient %d does not match its parameter", i)
-			}
-			finite = sgdUpdate(w, g, vel, prev[i].([]float32), s)
-		case []float64:
-			g, ok := grads[i].Data().([]float64)
-			if !ok || len(g) != len(w) {
-				s.undo(params, i-1)
-				return -1, fmt.Errorf("vae: optimiser: gradient %d does not match its parameter", i)
-			}
-			finite = sgdUpdate(w, g, vel, prev[i].([]float64), s)
-		default:
-			s.undo(params, i-1)
-			return -1, fmt.Errorf("vae: optimiser: parameter %d has dtype %v", i, params[i].Dtype())
-		}
-		if !finite {
-			s.undo(params, i)
-			return i, nil
-		}
+	return nil
+}
+
+func (s *sgd) update(i, lo, hi int, param, grad *tensor.Dense) bool {
+	var vel []float64
+	if s.vel != nil {
+		vel = s.vel[i][lo:hi]
 	}
-	return -1, nil
+	if param.Dtype() == tensor.Float32 {
+		return sgdUpdate(param.Float32s()[lo:hi], grad.Float32s()[lo:hi], vel, s.prev[i].([]float32)[lo:hi], s)
+	}
+	return sgdUpdate(param.Float64s()[lo:hi], grad.Float64s()[lo:hi], vel, s.prev[i].([]float64)[lo:hi], s)
 }
 
 // sgdUpdate updates w in place, keeping its previous values in prev, and

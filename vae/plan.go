@@ -587,15 +587,9 @@ func oneHot[T float](dst []T, l int) {
 // by side into scratch, (in, 2D), on every call (parameters may change
 // between calls; the copy costs less than a second product).
 func (p *planT[T]) headRows(w *leanWork[T], hp *headParams, h, mu, lv []T, rows int) {
-	d, in := hp.d, hp.in
-	wt := p.headWeights(w, hp)
-	mb, lb := p.k.data(hp.muB.Value), p.k.data(hp.lvB.Value)
+	d := hp.d
 	out := w.headOut[:rows*2*d]
-	for r := 0; r < rows; r++ {
-		copy(out[r*2*d:], mb[:d])
-		copy(out[r*2*d+d:], lb[:d])
-	}
-	p.k.gemm(false, rows, 2*d, in, h, in, wt, 2*d, out, 2*d)
+	headRaw(&p.k, hp, headWeights(&p.k, hp, w.headW), h, out, rows)
 	for r := 0; r < rows; r++ {
 		copy(mu[r*d:(r+1)*d], out[r*2*d:r*2*d+d])
 		for j, v := range out[r*2*d+d : (r+1)*2*d] {
@@ -604,10 +598,23 @@ func (p *planT[T]) headRows(w *leanWork[T], hp *headParams, h, mu, lv []T, rows 
 	}
 }
 
+// headRaw writes the head's two maps of rows feature rows h side by side
+// into out, (rows, 2D): mu, then the log-variance before its soft clamp.
+// wt holds the two weights side by side (headWeights).
+func headRaw[T float](k *kernels[T], hp *headParams, wt, h, out []T, rows int) {
+	d, in := hp.d, hp.in
+	mb, lb := k.data(hp.muB.Value), k.data(hp.lvB.Value)
+	for r := 0; r < rows; r++ {
+		copy(out[r*2*d:], mb[:d])
+		copy(out[r*2*d+d:], lb[:d])
+	}
+	k.gemm(false, rows, 2*d, in, h, in, wt, 2*d, out, 2*d)
+}
+
 // headRowsFM is headRows on feature-major features hT, (in, rows).
 func (p *planT[T]) headRowsFM(w *leanWork[T], hp *headParams, hT, mu, lv []T, rows int) {
 	d, in := hp.d, hp.in
-	wt := p.headWeights(w, hp)
+	wt := headWeights(&p.k, hp, w.headW)
 	mb, lb := p.k.data(hp.muB.Value), p.k.data(hp.lvB.Value)
 	out := w.headOut[:rows*2*d]
 	for j := 0; j < 2*d; j++ {
@@ -629,11 +636,12 @@ func (p *planT[T]) headRowsFM(w *leanWork[T], hp *headParams, hT, mu, lv []T, ro
 	}
 }
 
-// headWeights copies the head's two weights side by side, (in, 2D).
-func (p *planT[T]) headWeights(w *leanWork[T], hp *headParams) []T {
+// headWeights copies the head's two weights side by side into buf, (in,
+// 2D), and returns that part of it.
+func headWeights[T float](k *kernels[T], hp *headParams, buf []T) []T {
 	d, in := hp.d, hp.in
-	mw, lw := p.k.data(hp.muW.Value), p.k.data(hp.lvW.Value)
-	wt := w.headW[:in*2*d]
+	mw, lw := k.data(hp.muW.Value), k.data(hp.lvW.Value)
+	wt := buf[:in*2*d]
 	for i := 0; i < in; i++ {
 		copy(wt[i*2*d:], mw[i*d:(i+1)*d])
 		copy(wt[i*2*d+d:], lw[i*d:(i+1)*d])
@@ -644,9 +652,36 @@ func (p *planT[T]) headWeights(w *leanWork[T], hp *headParams) []T {
 // softClamp is layers.SoftClamp with the head's bounds:
 // x + softplus(lo - x) - softplus(x - hi).
 func softClamp[T float](x T) T {
-	below := T(softplus(float64(T(layers.LogVarMin) - x)))
-	above := T(softplus(float64(x - T(layers.LogVarMax))))
-	return x + below - above
+	y, _ := softClampSlope(x)
+	return y
+}
+
+// expLoHi is e^(lo - hi) for the head's bounds: inside them,
+// e^(x - hi) = expLoHi / e^(lo - x).
+var expLoHi = math.Exp(layers.LogVarMin - layers.LogVarMax)
+
+// softClampSlope returns softClamp(x), formed in float64 and rounded once,
+// and its derivative 1 - sigmoid(lo - x) - sigmoid(x - hi). Inside the
+// bounds both come from one exponential u = e^(lo - x), with
+// softplus(lo - x) = log1p(u), softplus(x - hi) = log1p(v) for
+// v = e^(x - hi) = expLoHi/u, and sigmoid(t) = e^t/(1 + e^t).
+func softClampSlope[T float](x T) (y, slope T) {
+	xf := float64(x)
+	t1, t2 := layers.LogVarMin-xf, xf-layers.LogVarMax
+	if t1 < 0 && t2 < 0 {
+		u := math.Exp(t1)
+		v := expLoHi / u
+		return T(xf + math.Log1p(u) - math.Log1p(v)), T(1 - u/(1+u) - v/(1+v))
+	}
+	// Outside the bounds (or NaN): the forms that cannot overflow.
+	return T(xf + softplus(t1) - softplus(t2)), T(1 - sigmoid(t1) - sigmoid(t2))
+}
+
+// klStandardTerm is one dimension's KL(N(mu, e^lv) || N(0, 1)) =
+// 0.5*(e^lv + mu^2 - 1 - lv) (Kingma and Welling 2014, appendix B), given
+// e^lv as expLV.
+func klStandardTerm(mu, lv, expLV float64) float64 {
+	return 0.5 * (expLV + mu*mu - 1 - lv)
 }
 
 // softplus is max(x, 0) + log1p(exp(-|x|)), exact and finite for every x.

@@ -396,10 +396,9 @@ func (p *planT[T]) klRow(w *leanWork[T], mu, lv []T, dims []float64) float64 {
 	var s float64
 	switch p.prior {
 	case priorStandard:
-		// Kingma and Welling 2014, appendix B.
 		for j := range mu {
 			m, l := float64(mu[j]), float64(lv[j])
-			v := 0.5 * (math.Exp(l) + m*m - 1 - l)
+			v := klStandardTerm(m, l, math.Exp(l))
 			dims[j] = v
 			s += v
 		}

@@ -3,7 +3,12 @@ package vae
 import (
 	"context"
 	"errors"
+	"math/rand/v2"
 	"testing"
+
+	"gorgonia.org/tensor"
+
+	"lowerbound.dev/layers"
 )
 
 // errBenchDone stops a benchmark's training run once the timed steps are
@@ -11,18 +16,26 @@ import (
 var errBenchDone = errors.New("benchmark done")
 
 // BenchmarkTrainStep times one optimiser step of the standard MLP VAE
-// (784-400-20, float32, Adam, batch 100) in steady state: the graph is built
-// and the first steps have run before the timer starts, so ns/op and
+// (784-400-20, float32, Adam, batch 100) in steady state: the trainer is
+// built and the first steps have run before the timer starts, so ns/op and
 // allocs/op are those of one step of a long training run (a step's share of
-// the per-epoch work, shuffling ten batches, included). It drives only
-// Train's public hooks: the timer starts in OnStep after the warm-up steps
-// and stops in OnStep after b.N more.
-func BenchmarkTrainStep(b *testing.B) {
+// the per-epoch work, shuffling ten batches, included: that is the B/op
+// left). It drives only Train's public hooks: the timer starts in OnStep
+// after the warm-up steps and stops in OnStep after b.N more. With -graph
+// (BenchmarkTrainStepGraph) the same on the graph path.
+func BenchmarkTrainStep(b *testing.B) { benchTrainStep(b, false) }
+
+// BenchmarkTrainStepGraph is BenchmarkTrainStep on the graph path, which
+// models with parts the lean path does not run take.
+func BenchmarkTrainStepGraph(b *testing.B) { benchTrainStep(b, true) }
+
+func benchTrainStep(b *testing.B, graph bool) {
 	const (
 		warm          = 3  // steps before the timer starts
 		stepsPerEpoch = 10 // 1000 records in batches of 100
 	)
 	m, data := benchModel(b), benchData(b, 100*stepsPerEpoch)
+	m.graphTrain = graph
 	stop := warm + b.N - 1 // the last timed step
 	stopped := false
 	cfg := TrainConfig{
@@ -50,6 +63,45 @@ func BenchmarkTrainStep(b *testing.B) {
 	}
 	if !stopped {
 		b.Fatal("training ended before the timed steps were done")
+	}
+	b.ReportMetric(float64(b.N*100)/b.Elapsed().Seconds(), "records/s")
+}
+
+// BenchmarkLeanStep runs the lean path's step and update alone, on the
+// same model and batch: allocs/op here is exactly the steady-state step's
+// (0), with no per-epoch work to amortise.
+func BenchmarkLeanStep(b *testing.B) {
+	m, data := benchModel(b), benchData(b, 100)
+	lt, err := m.newLeanTrainer(100)
+	if err != nil {
+		b.Fatal(err)
+	}
+	lt.start()
+	defer lt.close()
+	opt := newUpdater(TrainConfig{Optimizer: Adam, LearnRate: 1e-3})
+	idx := make([]int, 100)
+	for i := range idx {
+		idx[i] = i
+	}
+	eps := tensor.New(tensor.WithShape(100, 20), tensor.Of(tensor.Float32))
+	rng := rand.New(rand.NewPCG(1, 2))
+	sc := stepScalars{beta: 1}
+	step := func() {
+		if err := layers.FillNormal(rng, eps); err != nil {
+			b.Fatal(err)
+		}
+		if _, _, _, err := lt.step(data, idx, eps, sc); err != nil {
+			b.Fatal(err)
+		}
+		if bad, err := lt.update(opt); err != nil || bad >= 0 {
+			b.Fatalf("update: %d, %v", bad, err)
+		}
+	}
+	step() // the optimiser's state is allocated on its first step
+	b.ReportAllocs()
+	b.ResetTimer()
+	for range b.N {
+		step()
 	}
 	b.ReportMetric(float64(b.N*100)/b.Elapsed().Seconds(), "records/s")
 }

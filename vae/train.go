@@ -14,6 +14,7 @@ import (
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
 
+	"lowerbound.dev/layers"
 	"lowerbound.dev/vae/dataset"
 	"lowerbound.dev/vae/schedule"
 )
@@ -212,36 +213,110 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 	if err := cfg.validate(m, data); err != nil {
 		return nil, err
 	}
-	key := programKey{kind: kindTrain, batch: cfg.BatchSize, k: 1, freeBits: cfg.FreeBits.Lambda > 0, capacity: cfg.Capacity.Gamma > 0}
-	m.mu.Lock()
-	p, err := m.build(key)
-	m.mu.Unlock()
-	if err != nil {
-		return nil, err
+	// The lean path when the model's parts allow it (train_lean.go), else
+	// one gorgonia graph for every step.
+	var lt leanTrainer
+	var p *program
+	if !m.graphTrain {
+		lt, _ = m.newLeanTrainer(cfg.BatchSize)
 	}
-	if p.lambda != nil {
-		lambda := cfg.FreeBits.Lambda
-		if p.klDimAvg == nil {
-			lambda *= float64(m.latent) // one group: the total KL
+	var weights, grads []*tensor.Dense
+	var names []string
+	var xT, epsT *tensor.Dense
+	sc := stepScalars{freeBits: cfg.FreeBits.Lambda > 0, lambda: cfg.FreeBits.Lambda, capacity: cfg.Capacity.Gamma > 0, gamma: cfg.Capacity.Gamma}
+	if lt != nil {
+		lt.start()
+		defer lt.close()
+		for _, prm := range lt.params() {
+			weights, names = append(weights, prm.Value), append(names, prm.Name)
 		}
-		if err := setScalar(p.lambda, lambda); err != nil {
+		grads = lt.grads()
+		epsT = tensor.New(tensor.WithShape(cfg.BatchSize, m.latent), tensor.Of(m.dtype))
+	} else {
+		key := programKey{kind: kindTrain, batch: cfg.BatchSize, k: 1, freeBits: sc.freeBits, capacity: sc.capacity}
+		m.mu.Lock()
+		var err error
+		p, err = m.build(key)
+		m.mu.Unlock()
+		if err != nil {
 			return nil, err
 		}
-	}
-	if p.capGamma != nil {
-		if err := setScalar(p.capGamma, cfg.Capacity.Gamma); err != nil {
-			return nil, err
+		if p.lambda != nil {
+			lambda := cfg.FreeBits.Lambda
+			if p.klDimAvg == nil {
+				lambda *= float64(m.latent) // one group: the total KL
+			}
+			if err := setScalar(p.lambda, lambda); err != nil {
+				return nil, err
+			}
 		}
+		if p.capGamma != nil {
+			if err := setScalar(p.capGamma, cfg.Capacity.Gamma); err != nil {
+				return nil, err
+			}
+		}
+		for _, prm := range p.scope.Params() {
+			weights, names = append(weights, prm.Value), append(names, prm.Name)
+		}
+		grads = make([]*tensor.Dense, len(p.paramNodes))
+		xT, epsT = p.x, p.eps
 	}
 	opt := newUpdater(cfg)
-	var weights []*tensor.Dense
-	for _, prm := range p.scope.Params() {
-		weights = append(weights, prm.Value)
-	}
-	grads := make([]*tensor.Dense, len(p.paramNodes))
-
 	rng := rand.New(rand.NewPCG(cfg.Seed, 0x5eed))
 	noise := rand.New(rand.NewPCG(cfg.Seed, 0x0153))
+
+	// runStep computes the loss terms and the gradients of one batch.
+	runStep := func(idx []int, step int, beta float64) (loss, rec, kl float64, err error) {
+		if lt != nil {
+			// The lean path's shards convert their own records; the
+			// noise comes from the stream the feeder would draw it from.
+			if err := layers.FillNormal(noise, epsT); err != nil {
+				return 0, 0, 0, err
+			}
+			sc.beta = beta
+			sc.target = cfg.Capacity.Target(step)
+			recon, kl, loss, err := lt.step(data, idx, epsT, sc)
+			return loss, -recon, kl, err
+		}
+		if err := m.finishInputs(p, data, idx); err != nil {
+			return 0, 0, 0, err
+		}
+		p.mask.Zero()
+		for i := range idx {
+			setAt(p.mask, i, 1)
+		}
+		if err := setScalar(p.invCount, 1/float64(len(idx))); err != nil {
+			return 0, 0, 0, err
+		}
+		if err := setScalar(p.beta, beta); err != nil {
+			return 0, 0, 0, err
+		}
+		if p.capTarget != nil {
+			if err := setScalar(p.capTarget, cfg.Capacity.Target(step)); err != nil {
+				return 0, 0, 0, err
+			}
+		}
+		if err := p.run(); err != nil {
+			return 0, 0, 0, fmt.Errorf("vae.Train: step %d: %w", step, err)
+		}
+		loss, rec, kl = p.scalarValue(p.loss), -p.scalarValue(p.recon), p.scalarValue(p.klAvg)
+		if err := gradients(p.paramNodes, grads); err != nil {
+			return 0, 0, 0, fmt.Errorf("vae.Train: step %d: %w", step, err)
+		}
+		return loss, rec, kl, nil
+	}
+	// clearGrads readies the gradients for the next step: gorgonia adds
+	// each run's gradients to what the gradient tensors hold; the lean
+	// path overwrites them.
+	clearGrads := func() {
+		if lt != nil {
+			return
+		}
+		for _, g := range grads {
+			g.Zero()
+		}
+	}
+
 	var history []EpochInfo
 	best := math.Inf(1)
 	var bestParams []*tensor.Dense
@@ -256,23 +331,23 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 		}
 		var sumLoss, sumRec, sumKL float64
 		var beta float64
-		feed := newFeeder(data, batches, m.width, p.x, p.eps, noise)
+		var feed *feeder // the graph path's
+		if lt == nil {
+			feed = newFeeder(data, batches, m.width, xT, epsT, noise)
+		}
 		err = func() error {
-			defer feed.close()
+			if feed != nil {
+				defer feed.close()
+			}
 			for _, idx := range batches {
 				if err := ctx.Err(); err != nil {
 					return err
 				}
 				t0 := time.Now()
-				if err := feed.next(p.x, p.eps); err != nil {
-					return err
-				}
-				if err := m.finishInputs(p, data, idx); err != nil {
-					return err
-				}
-				p.mask.Zero()
-				for i := range idx {
-					setAt(p.mask, i, 1)
+				if feed != nil {
+					if err := feed.next(xT, epsT); err != nil {
+						return err
+					}
 				}
 				beta = cfg.Beta.At(step)
 				if beta < 0 || math.IsInf(beta, 0) {
@@ -280,21 +355,10 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 					// non-finite check of the loss.
 					return configError("Beta", "At(%d) = %v, want a finite value >= 0", step, beta)
 				}
-				if err := setScalar(p.invCount, 1/float64(len(idx))); err != nil {
+				loss, rec, kl, err := runStep(idx, step, beta)
+				if err != nil {
 					return err
 				}
-				if err := setScalar(p.beta, beta); err != nil {
-					return err
-				}
-				if p.capTarget != nil {
-					if err := setScalar(p.capTarget, cfg.Capacity.Target(step)); err != nil {
-						return err
-					}
-				}
-				if err := p.run(); err != nil {
-					return fmt.Errorf("vae.Train: step %d: %w", step, err)
-				}
-				loss, rec, kl := p.scalarValue(p.loss), -p.scalarValue(p.recon), p.scalarValue(p.klAvg)
 				for _, term := range []struct {
 					name string
 					v    float64
@@ -303,13 +367,15 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 						return fmt.Errorf("vae.Train: epoch %d, step %d: the %s term is %v: %w", epoch, step, term.name, term.v, ErrNonFinite)
 					}
 				}
-				if err := gradients(p.paramNodes, grads); err != nil {
-					return fmt.Errorf("vae.Train: step %d: %w", step, err)
-				}
 				if cfg.ClipNorm > 0 {
 					clipGradients(grads, cfg.ClipNorm)
 				}
-				bad, err := opt.step(weights, grads)
+				var bad int
+				if lt != nil {
+					bad, err = lt.update(opt)
+				} else {
+					bad, err = opt.step(weights, grads)
+				}
 				if err != nil {
 					return fmt.Errorf("vae.Train: step %d: %w", step, err)
 				}
@@ -317,13 +383,9 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 					// The updater has put every parameter back as it was
 					// after the last good step.
 					return fmt.Errorf("vae.Train: epoch %d, step %d: the update of parameter %q is not finite: %w",
-						epoch, step, p.scope.Params()[bad].Name, ErrNonFinite)
+						epoch, step, names[bad], ErrNonFinite)
 				}
-				// gorgonia adds each run's gradients to what the gradient
-				// tensors hold, so they are cleared for the next step.
-				for _, g := range grads {
-					g.Zero()
-				}
+				clearGrads()
 				c := float64(len(idx))
 				sumLoss += loss * c
 				sumRec += rec * c

@@ -23,6 +23,7 @@ func TestTrainStepsUseFreshGradients(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	trained.graphTrain = true // bit for bit against the graphs; train_lean_test.go compares the lean path with them
 	if _, err := trained.Train(context.Background(), data, TrainConfig{Epochs: steps, BatchSize: 1, Optimizer: SGD, LearnRate: lr, Seed: 11}); err != nil {
 		t.Fatal(err)
 	}

@@ -152,3 +152,32 @@ func bernoulliGradRowGo(out, x, l []float32, g float32) {
 		out[i] = g * d
 	}
 }
+
+// BernoulliRowSum64 is BernoulliRowSum32 in float64 with package math:
+// the sum over i of x[i]*l[i] - (max(l[i], 0) + log1p(e^-|l[i]|)).
+func BernoulliRowSum64(x, l []float64) float64 {
+	x = x[:len(l)]
+	var acc float64
+	for i, li := range l {
+		acc += (x[i]*li - math.Max(li, 0)) - math.Log1p(math.Exp(-math.Abs(li)))
+	}
+	return acc
+}
+
+// BernoulliGradRow64 is BernoulliGradRow32 in float64 with package math:
+// out[i] = g*(x[i] - sigmoid(l[i])), the sigmoid formed on the side of
+// zero where its exponential cannot overflow.
+func BernoulliGradRow64(out, x, l []float64, g float64) {
+	x, out = x[:len(l)], out[:len(l)]
+	for i, li := range l {
+		var d float64
+		if li >= 0 {
+			e := math.Exp(-li)
+			d = (x[i] - 1) + e/(1+e)
+		} else {
+			e := math.Exp(li)
+			d = x[i] - e/(1+e)
+		}
+		out[i] = g * d
+	}
+}
