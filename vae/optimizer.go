@@ -25,8 +25,11 @@ type updater interface {
 	// p takes the p-th of parts equal runs of every parameter's values);
 	// run calls its argument once for each worker, serially or at once.
 	// The result does not depend on parts: each value's update reads only
-	// its own state.
-	stepParts(params, grads []*tensor.Dense, parts int, run func(func(part int))) (bad int, err error)
+	// its own state. before, if not nil, is called on each run of values
+	// [lo, hi) of parameter i, in pieces of at most updateChunk values,
+	// just before they are updated (the lean trainer sums its shards'
+	// gradients there, while they are in cache).
+	stepParts(params, grads []*tensor.Dense, parts int, run func(func(part int)), before func(i, lo, hi int)) (bad int, err error)
 }
 
 // stepper is what an updater does for one step: prepare checks the
@@ -57,6 +60,7 @@ type partRunner struct {
 	u             stepper
 	params, grads []*tensor.Dense
 	parts         int
+	before        func(i, lo, hi int)
 	bads          []int // per worker: its first parameter at fault, or -1
 	fn            func(part int)
 }
@@ -65,16 +69,25 @@ func (r *partRunner) work(part int) {
 	first := -1
 	for i, p := range r.params {
 		lo, hi := partRange(p.Size(), part, r.parts)
-		if lo < hi && !r.u.update(i, lo, hi, p, r.grads[i]) && first < 0 {
-			first = i
+		for c := lo; c < hi; c += updateChunk {
+			e := min(hi, c+updateChunk)
+			if r.before != nil {
+				r.before(i, c, e)
+			}
+			if !r.u.update(i, c, e, p, r.grads[i]) && first < 0 {
+				first = i
+			}
 		}
 	}
 	r.bads[part] = first
 }
 
+// updateChunk is the most values updated at once (a multiple of 16).
+const updateChunk = 4096
+
 // runSteps is stepParts for a stepper. If any parameter's update is not
 // finite, every parameter is put back and the first such index returned.
-func runSteps(u stepper, params, grads []*tensor.Dense, parts int, run func(func(part int)), r *partRunner) (int, error) {
+func runSteps(u stepper, params, grads []*tensor.Dense, parts int, run func(func(part int)), before func(i, lo, hi int), r *partRunner) (int, error) {
 	if err := u.prepare(params, grads); err != nil {
 		return -1, err
 	}
@@ -84,7 +97,7 @@ func runSteps(u stepper, params, grads []*tensor.Dense, parts int, run func(func
 	if r.fn == nil {
 		r.fn = r.work
 	}
-	r.u, r.params, r.grads, r.parts, r.bads = u, params, grads, parts, r.bads[:parts]
+	r.u, r.params, r.grads, r.parts, r.bads, r.before = u, params, grads, parts, r.bads[:parts], before
 	if run == nil || parts == 1 {
 		for part := 0; part < parts; part++ {
 			r.work(part)
@@ -92,7 +105,7 @@ func runSteps(u stepper, params, grads []*tensor.Dense, parts int, run func(func
 	} else {
 		run(r.fn)
 	}
-	r.params, r.grads = nil, nil
+	r.params, r.grads, r.before = nil, nil, nil
 	bad := -1
 	for _, b := range r.bads {
 		if b >= 0 && (bad < 0 || b < bad) {
@@ -185,11 +198,11 @@ type adam struct {
 }
 
 func (a *adam) step(params, grads []*tensor.Dense) (int, error) {
-	return a.stepParts(params, grads, 1, nil)
+	return a.stepParts(params, grads, 1, nil, nil)
 }
 
-func (a *adam) stepParts(params, grads []*tensor.Dense, parts int, run func(func(int))) (int, error) {
-	return runSteps(a, params, grads, parts, run, &a.runner)
+func (a *adam) stepParts(params, grads []*tensor.Dense, parts int, run func(func(int)), before func(i, lo, hi int)) (int, error) {
+	return runSteps(a, params, grads, parts, run, before, &a.runner)
 }
 
 func (a *adam) prepare(params, grads []*tensor.Dense) error {
@@ -273,11 +286,11 @@ type sgd struct {
 }
 
 func (s *sgd) step(params, grads []*tensor.Dense) (int, error) {
-	return s.stepParts(params, grads, 1, nil)
+	return s.stepParts(params, grads, 1, nil, nil)
 }
 
-func (s *sgd) stepParts(params, grads []*tensor.Dense, parts int, run func(func(int))) (int, error) {
-	return runSteps(s, params, grads, parts, run, &s.runner)
+func (s *sgd) stepParts(params, grads []*tensor.Dense, parts int, run func(func(int)), before func(i, lo, hi int)) (int, error) {
+	return runSteps(s, params, grads, parts, run, before, &s.runner)
 }
 
 func (s *sgd) prepare(params, grads []*tensor.Dense) error {

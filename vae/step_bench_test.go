@@ -93,7 +93,7 @@ func BenchmarkLeanStep(b *testing.B) {
 		if _, _, _, err := lt.step(data, idx, eps, sc); err != nil {
 			b.Fatal(err)
 		}
-		if bad, err := lt.update(opt); err != nil || bad >= 0 {
+		if bad, err := lt.update(opt, 0); err != nil || bad >= 0 {
 			b.Fatalf("update: %d, %v", bad, err)
 		}
 	}

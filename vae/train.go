@@ -367,13 +367,13 @@ func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) (
 						return fmt.Errorf("vae.Train: epoch %d, step %d: the %s term is %v: %w", epoch, step, term.name, term.v, ErrNonFinite)
 					}
 				}
-				if cfg.ClipNorm > 0 {
-					clipGradients(grads, cfg.ClipNorm)
-				}
 				var bad int
 				if lt != nil {
-					bad, err = lt.update(opt)
+					bad, err = lt.update(opt, cfg.ClipNorm)
 				} else {
+					if cfg.ClipNorm > 0 {
+						clipGradients(grads, cfg.ClipNorm)
+					}
 					bad, err = opt.step(weights, grads)
 				}
 				if err != nil {

@@ -48,11 +48,13 @@ type leanTrainer interface {
 	// the gradient of every parameter into grads() and returns the batch
 	// means of log p(x|z) and of the KL, and the loss.
 	step(data *dataset.Set, idx []int, eps *tensor.Dense, s stepScalars) (recon, kl, loss float64, err error)
-	// update applies opt to the parameters with grads(), the trainer's
-	// workers each taking a share of the parameters.
-	update(opt updater) (bad int, err error)
+	// update sums the shards' gradients, clips them to clip (when > 0,
+	// see clipGradients) and applies opt to the parameters, the trainer's
+	// workers each taking a share of every parameter.
+	update(opt updater, clip float64) (bad int, err error)
 	// params and grads list the trained parameters and their gradient
-	// buffers, in one order.
+	// buffers, in one order; the gradients are the whole batch's after
+	// update (or after step, with one shard).
 	params() []*layers.Param
 	grads() []*tensor.Dense
 	// start readies the trainer's helper goroutine, if it has one; close
@@ -143,6 +145,7 @@ type trainPlan[T float] struct {
 	n          float64        // records in the step
 	part       func(part int) // phaseUpdate's work
 	runPartsFn func(func(part int))
+	reduceFn   func(j, lo, hi int)
 	klDimAvg   []float64
 	coef       []float64 // (D): d loss / d klDim[i][j] for every record i
 	invVar     T         // Gaussian likelihood: 1 / sigma^2
@@ -342,15 +345,21 @@ func (t *trainPlan[T]) phase(i, phase int) {
 		t.backwardShard(s)
 	case phaseReduce:
 		// Shard i adds up the i-th run of every gradient's values.
-		for j := range s.gs {
-			dst := t.k.data(t.shards[0].gs[j])
-			lo, hi := partRange(len(dst), i, len(t.shards))
-			for _, o := range t.shards[1:] {
-				src := t.k.data(o.gs[j])[lo:hi]
-				for e, v := range src {
-					dst[lo+e] += v
-				}
-			}
+		for j, g := range s.gs {
+			lo, hi := partRange(g.Size(), i, len(t.shards))
+			t.reduce(j, lo, hi)
+		}
+	}
+}
+
+// reduce adds the other shards' gradients of parameter j, values [lo, hi),
+// into shard 0's.
+func (t *trainPlan[T]) reduce(j, lo, hi int) {
+	dst := t.k.data(t.shards[0].gs[j])[lo:hi]
+	for _, o := range t.shards[1:] {
+		src := t.k.data(o.gs[j])[lo:hi]
+		for e, v := range src {
+			dst[e] += v
 		}
 	}
 }
@@ -412,11 +421,24 @@ func colSums[T float](s, d []T, rows, cols int) {
 	}
 }
 
-func (t *trainPlan[T]) update(opt updater) (int, error) {
+func (t *trainPlan[T]) update(opt updater, clip float64) (int, error) {
 	if t.runPartsFn == nil {
-		t.runPartsFn = t.runParts // bound once: a method value allocates
+		// bound once: a method value allocates
+		t.runPartsFn, t.reduceFn = t.runParts, t.reduce
 	}
-	return opt.stepParts(t.values, t.grads(), len(t.shards), t.runPartsFn)
+	before := t.reduceFn
+	switch {
+	case len(t.shards) == 1:
+		before = nil
+	case clip > 0:
+		// The norm needs every gradient summed first.
+		t.all(phaseReduce)
+		before = nil
+	}
+	if clip > 0 {
+		clipGradients(t.grads(), clip)
+	}
+	return opt.stepParts(t.values, t.grads(), len(t.shards), t.runPartsFn, before)
 }
 
 // runParts runs fn once for each shard, on the shards' goroutines.
@@ -481,9 +503,6 @@ func (t *trainPlan[T]) step(data *dataset.Set, idx []int, epst *tensor.Dense, sc
 		}
 	}
 	t.all(phaseBackward)
-	if len(t.shards) > 1 {
-		t.all(phaseReduce)
-	}
 	return recon, klAvg, loss, nil
 }
 

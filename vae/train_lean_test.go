@@ -122,6 +122,10 @@ func TestLeanTrainMatchesGraph(t *testing.T) {
 			c.FreeBits = schedule.FreeBits{Lambda: 0.2}
 			return c
 		}},
+		{"two shards clipped", mlp(MLPConfig{Activation: layers.ReLU}), labelled129, func(c TrainConfig) TrainConfig {
+			c.BatchSize, c.ClipNorm = 64, 3
+			return c
+		}},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
