@@ -650,31 +650,38 @@ func headWeights[T float](k *kernels[T], hp *headParams, buf []T) []T {
 }
 
 // softClamp is layers.SoftClamp with the head's bounds:
-// x + softplus(lo - x) - softplus(x - hi).
+// x + softplus(lo - x) - softplus(x - hi), formed in float64 and rounded
+// once.
 func softClamp[T float](x T) T {
-	y, _ := softClampSlope(x)
-	return y
+	lv, _, _ := clampLogVar(float64(x))
+	return T(lv)
 }
 
-// expLoHi is e^(lo - hi) for the head's bounds: inside them,
-// e^(x - hi) = expLoHi / e^(lo - x).
-var expLoHi = math.Exp(layers.LogVarMin - layers.LogVarMax)
+// Constants of clampLogVar: e^lo and e^-hi for the head's bounds.
+var (
+	expLo    = math.Exp(layers.LogVarMin)
+	expNegHi = math.Exp(-layers.LogVarMax)
+)
 
-// softClampSlope returns softClamp(x), formed in float64 and rounded once,
-// and its derivative 1 - sigmoid(lo - x) - sigmoid(x - hi). Inside the
-// bounds both come from one exponential u = e^(lo - x), with
-// softplus(lo - x) = log1p(u), softplus(x - hi) = log1p(v) for
-// v = e^(x - hi) = expLoHi/u, and sigmoid(t) = e^t/(1 + e^t).
-func softClampSlope[T float](x T) (y, slope T) {
-	xf := float64(x)
-	t1, t2 := layers.LogVarMin-xf, xf-layers.LogVarMax
+// clampLogVar returns the head's log-variance lv = softClamp(x), its
+// derivative slope = 1 - sigmoid(lo - x) - sigmoid(x - hi), and e^lv.
+// Inside the bounds all three come from one exponential e = e^x: with
+// u = e^(lo - x) = e^lo/e and v = e^(x - hi) = e*e^-hi,
+//
+//	lv = x + log1p(u) - log1p(v)
+//	slope = 1 - u/(1 + u) - v/(1 + v)
+//	e^lv = e (1 + u)/(1 + v)
+//
+// Outside them (or for NaN) it uses the forms that cannot overflow.
+func clampLogVar(x float64) (lv, slope, expLV float64) {
+	t1, t2 := layers.LogVarMin-x, x-layers.LogVarMax
 	if t1 < 0 && t2 < 0 {
-		u := math.Exp(t1)
-		v := expLoHi / u
-		return T(xf + math.Log1p(u) - math.Log1p(v)), T(1 - u/(1+u) - v/(1+v))
+		e := math.Exp(x)
+		u, v := expLo/e, e*expNegHi
+		return x + math.Log1p(u) - math.Log1p(v), 1 - u/(1+u) - v/(1+v), e * (1 + u) / (1 + v)
 	}
-	// Outside the bounds (or NaN): the forms that cannot overflow.
-	return T(xf + softplus(t1) - softplus(t2)), T(1 - sigmoid(t1) - sigmoid(t2))
+	lv = x + softplus(t1) - softplus(t2)
+	return lv, 1 - sigmoid(t1) - sigmoid(t2), math.Exp(lv)
 }
 
 // klStandardTerm is one dimension's KL(N(mu, e^lv) || N(0, 1)) =

@@ -167,7 +167,7 @@ type trainShard[T float] struct {
 	encX        []T // (rows, encIn): records and one-hot labels
 	headW       []T // (in, 2D): the head's two weights side by side
 	headOut     []T // (rows, 2D): mu and the raw log-variance
-	lv, sigma   []T // (rows, D): clamped log-variance, exp(lv/2)
+	sigma       []T // (rows, D): exp(lv/2), lv the clamped log-variance
 	slope       []T // (rows, D): the soft clamp's derivative
 	decX        []T // (rows, D + classes): z and one-hot labels
 	dHead       []T // (rows, 2D): gradient with respect to headOut
@@ -275,7 +275,7 @@ func (t *trainPlan[T]) newShard(first, rows int, first0 bool) *trainShard[T] {
 		s.encX = make([]T, rows*p.encIn)
 	}
 	s.headW, s.headOut, s.dHead = make([]T, h.in*2*d), make([]T, rows*2*d), make([]T, rows*2*d)
-	s.lv, s.sigma, s.slope, s.decX = make([]T, rows*d), make([]T, rows*d), make([]T, rows*d), make([]T, rows*p.decIn)
+	s.sigma, s.slope, s.decX = make([]T, rows*d), make([]T, rows*d), make([]T, rows*p.decIn)
 	s.dA, s.dB = make([]T, rows*maxW), make([]T, rows*maxW)
 	s.klDim = make([]float64, d)
 	return s
@@ -534,21 +534,20 @@ func (t *trainPlan[T]) forwardShard(s *trainShard[T]) {
 	headRaw(&t.k, hp, headWeights(&t.k, hp, s.headW), s.hin, out, rows)
 
 	// Sampler, z = mu + exp(lv/2) * eps (layers.Reparameterize), and KL.
-	lv, sig, slope, zin := s.lv[:rows*d], s.sigma[:rows*d], s.slope[:rows*d], s.decX[:rows*p.decIn]
+	sig, slope, zin := s.sigma[:rows*d], s.slope[:rows*d], s.decX[:rows*p.decIn]
 	s.kl = 0
 	clear(s.klDim)
 	for r := 0; r < rows; r++ {
 		mu := out[r*2*d : r*2*d+d]
 		raw := out[r*2*d+d : (r+1)*2*d]
-		lvr, sr, slr, er := lv[r*d:(r+1)*d], sig[r*d:(r+1)*d], slope[r*d:(r+1)*d], eps[r*d:(r+1)*d]
+		sr, slr, er := sig[r*d:(r+1)*d], slope[r*d:(r+1)*d], eps[r*d:(r+1)*d]
 		zr := zin[r*p.decIn : (r+1)*p.decIn]
 		for j := 0; j < d; j++ {
-			lvr[j], slr[j] = softClampSlope(raw[j])
-			l := float64(lvr[j])
-			sg := math.Exp(0.5 * l)
-			sr[j] = T(sg)
+			l, sl, el := clampLogVar(float64(raw[j]))
+			slr[j] = T(sl)
+			sr[j] = T(math.Sqrt(el)) // e^(lv/2)
 			zr[j] = mu[j] + sr[j]*er[j]
-			v := klStandardTerm(float64(mu[j]), l, sg*sg)
+			v := klStandardTerm(float64(mu[j]), l, el)
 			s.klDim[j] += v
 			s.kl += v
 		}

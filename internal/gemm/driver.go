@@ -214,8 +214,22 @@ func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], ap []T, a
 		} else {
 			pb = &bp[jr*kcb] // packed: strips of kcb×nr
 		}
-		for ir := 0; ir < mcb; ir += mr {
+		// With A read in place and a kernel for every row count, the rows
+		// are cut into tiles of nearly equal height (50 rows: five of 10,
+		// not four of 12 and one of 2, whose 2-row tile does a sixth of the
+		// work per load of B). Each element of C still sums over p in the
+		// same order, so the result does not change.
+		tiles, rowsLeft := (mcb+mr-1)/mr, mcb
+		if kn.tile == nil || ars == 0 {
+			tiles = 0 // packed A comes in strips of mr rows
+		}
+		for ir := 0; ir < mcb; {
 			rows := min(mr, mcb-ir)
+			if tiles > 0 {
+				rows = (rowsLeft + tiles - 1) / tiles
+				tiles--
+				rowsLeft -= rows
+			}
 			var pa *T
 			rs, ps := 1, mr
 			if ars > 0 {
@@ -225,10 +239,12 @@ func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], ap []T, a
 			}
 			if kn.tile != nil {
 				kn.tile(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta, rows, cols, ldb, rs, ps)
+				ir += rows
 				continue
 			}
 			if rows == mr && cols == nr {
 				kn.micro(kcb, pa, pb, &c[ir*ldc+jr], ldc, alpha, beta)
+				ir += rows
 				continue
 			}
 			kn.micro(kcb, pa, pb, &tmp[0], nr, alpha, 0)
@@ -243,6 +259,7 @@ func macro[T float](kn *kernel[T], mcb, ncb, kcb int, buf *buffers[T], ap []T, a
 					dst[j] = v + beta*dst[j]
 				}
 			}
+			ir += rows
 		}
 	}
 }
