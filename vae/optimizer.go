@@ -264,6 +264,8 @@ func adamUpdate[T float32 | float64](w, g, m, v, prev []T, a *adam, c1, c2 float
 		gj := g[j]
 		mj := b1*m[j] + ob1*gj
 		vj := b2*v[j] + ob2*gj*gj
+		// Subnormal moments become +0, as in vecmath.Adam32.
+		mj, vj = flushSubnormal(mj), flushSubnormal(vj)
 		m[j], v[j] = mj, vj
 		wj := w[j]
 		prev[j] = wj
@@ -342,4 +344,12 @@ func sgdUpdate[T float32 | float64](w, g []T, vel []float64, prev []T, s *sgd) b
 		check += wj - wj
 	}
 	return check == 0
+}
+
+// flushSubnormal is vecmath.FlushSubnormal32 or FlushSubnormal64 by T.
+func flushSubnormal[T float32 | float64](x T) T {
+	if v, ok := any(x).(float32); ok {
+		return T(vecmath.FlushSubnormal32(v))
+	}
+	return T(vecmath.FlushSubnormal64(float64(x)))
 }

@@ -202,10 +202,15 @@ func (c *TrainConfig) validate(m *Model, data *dataset.Set) error {
 	return nil
 }
 
-// Train fits the model to data. It builds one training graph and reuses it
-// for every step; a last batch smaller than BatchSize runs through the same
-// graph with its padding rows weighted zero. It stops early, returning the
-// history so far and the context's error, when ctx is done.
+// Train fits the model to data. A model whose parts the lean training path
+// runs (see the package documentation) trains without graphs, on buffers
+// sized once for BatchSize, and uses two cores for batches of 64 records
+// or more when GOMAXPROCS allows; any other model builds one training graph
+// and reuses it for every step, a last batch smaller than BatchSize running
+// through it with its padding rows weighted zero. The same seed, data and
+// configuration give the same parameters bit for bit on either path, on
+// any number of cores. Train stops early, returning the history so far and
+// the context's error, when ctx is done.
 func (m *Model) Train(ctx context.Context, data *dataset.Set, cfg TrainConfig) ([]EpochInfo, error) {
 	if ctx == nil {
 		ctx = context.Background()

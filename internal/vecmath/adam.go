@@ -1,5 +1,7 @@
 package vecmath
 
+import "math"
+
 // AdamCoeffs are the per-step scalars of an Adam update (Kingma and Ba
 // 2015, Algorithm 1) in float32: the decay rates B1, B2, their complements
 // OB1 = 1-beta1 and OB2 = 1-beta2, the learning rate LR, Eps, and the
@@ -14,6 +16,14 @@ type AdamCoeffs struct {
 //	m = B1*m + OB1*g
 //	v = B2*v + (OB2*g)*g
 //	w = w - (LR*(m*IC1)) / (sqrt(v*IC2) + Eps)
+//
+// A new m or v below the smallest normal float32 (2^-126) is stored as +0.
+// A parameter whose gradient stays zero (a unit that no longer fires)
+// would otherwise see its moments decay into subnormal numbers, on which
+// x86 arithmetic runs tens of times slower; flushing them changes the
+// step by less than 2^-126*LR*IC1/Eps, far below a float32 ulp of any
+// weight. (Flushing subnormals to zero is common practice in float32
+// training.)
 //
 // It reports whether every new value of w is finite. g, m, v and prev must
 // be at least as long as w.
@@ -48,6 +58,7 @@ func adamGo(w, g, m, v, prev []float32, c *AdamCoeffs) float32 {
 		gj := g[j]
 		mj := c.B1*m[j] + c.OB1*gj
 		vj := c.B2*v[j] + c.OB2*gj*gj
+		mj, vj = FlushSubnormal32(mj), FlushSubnormal32(vj)
 		m[j], v[j] = mj, vj
 		wj := w[j]
 		prev[j] = wj
@@ -56,4 +67,21 @@ func adamGo(w, g, m, v, prev []float32, c *AdamCoeffs) float32 {
 		check += wj - wj
 	}
 	return check
+}
+
+// FlushSubnormal32 returns +0 for x = ±0 or a subnormal x, else x: the
+// assembly's test of the exponent bits.
+func FlushSubnormal32(x float32) float32 {
+	if math.Float32bits(x)&0x7f800000 == 0 {
+		return 0
+	}
+	return x
+}
+
+// FlushSubnormal64 is FlushSubnormal32 for float64 (below 2^-1022).
+func FlushSubnormal64(x float64) float64 {
+	if math.Float64bits(x)&0x7ff0000000000000 == 0 {
+		return 0
+	}
+	return x
 }

@@ -110,3 +110,52 @@ func BenchmarkAdam32(b *testing.B) {
 		}
 	})
 }
+
+// Moments that decay below the smallest normal float32 (a parameter whose
+// gradient is zero) are stored as +0, by the assembly and the Go loop
+// alike, and the weights come out as they would without the flush (the
+// difference is far below a float32 ulp of w).
+func TestAdam32FlushesSubnormal(t *testing.T) {
+	c := adamCoeffs
+	const n = 67 // eight-wide blocks and a tail
+	w, g, m, v := adamCase(n, 11)
+	for i := range w {
+		switch i % 3 {
+		case 0: // decays into the subnormal range: 0.9*1.2e-38 and 0.999*1.176e-38 < 2^-126
+			g[i], m[i], v[i] = 0, 1.2e-38, 1.176e-38
+		case 1: // already subnormal, or -0
+			g[i], m[i], v[i] = 0, -1e-40, float32(math.Copysign(0, -1))
+		}
+	}
+	wg, mg, vg := append([]float32(nil), w...), append([]float32(nil), m...), append([]float32(nil), v...)
+	wr := append([]float32(nil), w...) // the update without the flush
+	prev, prevg := make([]float32, n), make([]float32, n)
+	if !Adam32(w, g, m, v, prev, &c) {
+		t.Fatal("Adam32 reports a non-finite value")
+	}
+	adamGo(wg, g, mg, vg, prevg, &c)
+	for i := range w {
+		if math.Float32bits(w[i]) != math.Float32bits(wg[i]) || math.Float32bits(m[i]) != math.Float32bits(mg[i]) ||
+			math.Float32bits(v[i]) != math.Float32bits(vg[i]) {
+			t.Fatalf("i=%d: Adam32 (w %v m %v v %v) differs from the Go loop (w %v m %v v %v)", i, w[i], m[i], v[i], wg[i], mg[i], vg[i])
+		}
+		if i%3 != 2 {
+			if math.Float32bits(m[i]) != 0 || math.Float32bits(v[i]) != 0 {
+				t.Errorf("i=%d: m %v, v %v, want +0 for both", i, m[i], v[i])
+			}
+			continue
+		}
+		if m[i] == 0 || v[i] == 0 {
+			t.Errorf("i=%d: normal moments m %v, v %v were flushed", i, m[i], v[i])
+		}
+	}
+	// Without the flush, in float64 from the same inputs (Kingma and Ba
+	// 2015, Algorithm 1): the same float32 weights.
+	for i := 0; i < n; i += 3 {
+		mi := 0.9 * float64(float32(1.2e-38))
+		step := 1e-3 * (mi * float64(c.IC1)) / (math.Sqrt(0.999*float64(float32(1.176e-38))*float64(c.IC2)) + 1e-8)
+		if want := float32(float64(wr[i]) - step); w[i] != want {
+			t.Errorf("i=%d: w %v, want %v as without the flush", i, w[i], want)
+		}
+	}
+}

@@ -6,6 +6,16 @@
 
 // Float32 constants of the fast Bernoulli kernels (see bernoulli.go), each
 // broadcast to eight lanes where it is used.
+DATA expmask<>+0(SB)/4, $0x7f800000  // float32 exponent bits, eight times
+DATA expmask<>+4(SB)/4, $0x7f800000
+DATA expmask<>+8(SB)/4, $0x7f800000
+DATA expmask<>+12(SB)/4, $0x7f800000
+DATA expmask<>+16(SB)/4, $0x7f800000
+DATA expmask<>+20(SB)/4, $0x7f800000
+DATA expmask<>+24(SB)/4, $0x7f800000
+DATA expmask<>+28(SB)/4, $0x7f800000
+GLOBL expmask<>(SB), RODATA|NOPTR, $32
+
 DATA bconst<>+0(SB)/4, $0x80000000  // sign bit
 DATA bconst<>+4(SB)/4, $0xc2ae0000  // -87
 DATA bconst<>+8(SB)/4, $0x3fb8aa3b  // log2(e)
@@ -193,11 +203,19 @@ adamloop:
 	VMULPS  (R8), Y8, Y2
 	VMULPS  Y1, Y9, Y3
 	VADDPS  Y3, Y2, Y2  // m
+	VPAND   expmask<>(SB), Y2, Y3
+	VXORPS  Y5, Y5, Y5
+	VPCMPEQD Y5, Y3, Y3 // m is zero or subnormal
+	VANDNPS Y2, Y3, Y2  // then +0
 	VMOVUPS Y2, (R8)
 	VMULPS  (R9), Y10, Y4
 	VMULPS  Y1, Y11, Y5
 	VMULPS  Y1, Y5, Y5
 	VADDPS  Y5, Y4, Y4  // v
+	VPAND   expmask<>(SB), Y4, Y3
+	VXORPS  Y5, Y5, Y5
+	VPCMPEQD Y5, Y3, Y3 // v is zero or subnormal
+	VANDNPS Y4, Y3, Y4  // then +0
 	VMOVUPS Y4, (R9)
 	VMOVUPS (DI), Y6
 	VMOVUPS Y6, (R10)

@@ -12,7 +12,9 @@
 //
 //	go run ./internal/cmd/mnistbench -epochs 5 -hidden 400 -latent 20 -activation relu
 //
-// -blas gonum runs the graphs on gonum's pure Go BLAS instead of the SDK's
+// -threads sets GOMAXPROCS; the default is every core, the SDK's default
+// (the PyTorch reference is fastest on one thread: compare both). -blas
+// gonum runs the products on gonum's pure Go BLAS instead of the SDK's
 // engine (for before/after comparisons), -blas portable on the engine with
 // its portable Go kernels. Built with -tags openblas (cgo and Debian's
 // libopenblas-dev) the default is OpenBLAS; set OPENBLAS_NUM_THREADS to
@@ -64,7 +66,7 @@ type summary struct {
 func main() {
 	epochs := flag.Int("epochs", 1, "training epochs")
 	seed := flag.Uint64("seed", 0, "seed for initialisation, shuffling and noise")
-	threads := flag.Int("threads", 1, "OS threads for Go code (GOMAXPROCS)")
+	threads := flag.Int("threads", runtime.NumCPU(), "OS threads for Go code (GOMAXPROCS); the default is every core")
 	k := flag.Int("k", 100, "importance samples for the test NLL estimate")
 	dtype := flag.String("dtype", "float32", "float32 or float64")
 	limit := flag.Int("limit", 0, "use only the first N training and test records (0: all)")
