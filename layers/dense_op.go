@@ -411,12 +411,15 @@ func nonNegative[T float32 | float64](v T) bool {
 func activate32(a Activation, y []float32) {
 	switch a {
 	case ReLU:
+		// (v + 0) * (v >= 0): -0 becomes +0, a negative v -0, -Inf and
+		// NaN NaN, as x*(x >= 0) gives. The 0 or 1 is chosen on integer
+		// bits so that the loop has no branch to mispredict on the signs.
 		for i, v := range y {
+			k := uint32(0)
 			if v >= 0 {
-				y[i] = v + 0 // -0 becomes +0
-			} else {
-				y[i] = v * 0 // -0 (NaN for -Inf, as x*(x >= 0) gives)
+				k = 0x3f800000 // 1
 			}
+			y[i] = (v + 0) * math.Float32frombits(k)
 		}
 	case LeakyReLU:
 		for i, v := range y {
@@ -500,12 +503,10 @@ func actGrad[T float32 | float64](a Activation, d, y, g []T) {
 	y, g = y[:len(d)], g[:len(d)]
 	switch a {
 	case ReLU:
-		for i, v := range y {
-			var m T
-			if nonNegative(v) {
-				m = 1
-			}
-			d[i] = g[i] * m
+		if d32, ok := any(d).([]float32); ok {
+			reluGrad32(d32, any(y).([]float32), any(g).([]float32))
+		} else {
+			reluGrad64(any(d).([]float64), any(y).([]float64), any(g).([]float64))
 		}
 	case LeakyReLU:
 		for i, v := range y {
@@ -538,5 +539,28 @@ func actGrad[T float32 | float64](a Activation, d, y, g []T) {
 		}
 	default:
 		copy(d, g)
+	}
+}
+
+// reluGrad32 sets d[i] = g[i] * (1 if nonNegative(y[i]) else 0) without a
+// branch: the factor is 1 when y's sign bit is clear and y is not NaN.
+func reluGrad32(d, y, g []float32) {
+	y, g = y[:len(d)], g[:len(d)]
+	for i, v := range y {
+		b := int32(math.Float32bits(v))
+		neg := b >> 31                               // all ones when the sign bit is set
+		nan := (0x7f800000 - (b & 0x7fffffff)) >> 31 // all ones for NaN
+		d[i] = g[i] * math.Float32frombits(uint32(0x3f800000&^(neg|nan)))
+	}
+}
+
+// reluGrad64 is reluGrad32 for float64.
+func reluGrad64(d, y, g []float64) {
+	y, g = y[:len(d)], g[:len(d)]
+	for i, v := range y {
+		b := int64(math.Float64bits(v))
+		neg := b >> 63
+		nan := (0x7ff0000000000000 - (b & 0x7fffffffffffffff)) >> 63
+		d[i] = g[i] * math.Float64frombits(uint64(0x3ff0000000000000&^(neg|nan)))
 	}
 }
