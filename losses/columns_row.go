@@ -63,3 +63,38 @@ func (c *Columns) MeanRow(out, logSigmas, dst []float64) error {
 	meanRow(c, out, logSigmas, dst)
 	return nil
 }
+
+// GradRow is LogProbRow with the derivatives of each column's term: dOut
+// (OutputWidth values) receives d log p(x_j | out) / d out at the outputs
+// of each column j, and dLogSigmas (one value per column) d log p(x_j |
+// out) / d log sigma_j for each column with LearnSigma, 0 for the others
+// and for missing entries. These are the derivatives the graph op's
+// gradients use (the same function computes both). It allocates nothing;
+// wrong lengths return an error wrapping layers.ErrInvalidArgument.
+func (c *Columns) GradRow(x, out, logSigmas, lp, dOut, dLogSigmas []float64) (float64, error) {
+	const where = "losses.Columns.GradRow"
+	if c == nil || c.cols == nil {
+		return 0, argError(where, "c", "not made by NewColumns")
+	}
+	nc := len(c.cols)
+	switch {
+	case len(x) != nc:
+		return 0, argError(where, "x", "%d values, want one per column (%d)", len(x), nc)
+	case len(out) != c.width:
+		return 0, argError(where, "out", "%d values, want OutputWidth (%d)", len(out), c.width)
+	case len(logSigmas) != nc:
+		return 0, argError(where, "logSigmas", "%d values, want one per column (%d)", len(logSigmas), nc)
+	case len(lp) != nc:
+		return 0, argError(where, "lp", "%d values, want one per column (%d)", len(lp), nc)
+	case len(dOut) != c.width:
+		return 0, argError(where, "dOut", "%d values, want OutputWidth (%d)", len(dOut), c.width)
+	case len(dLogSigmas) != nc:
+		return 0, argError(where, "dLogSigmas", "%d values, want one per column (%d)", len(dLogSigmas), nc)
+	}
+	columnTerms(c.cols, c.offs, x, out, logSigmas, lp, dOut, dLogSigmas)
+	var s float64
+	for _, v := range lp {
+		s += v
+	}
+	return s, nil
+}

@@ -6,6 +6,7 @@ import (
 	"math/rand/v2"
 	"testing"
 
+	"gonum.org/v1/gonum/diff/fd"
 	"gonum.org/v1/gonum/stat/distuv"
 	"gorgonia.org/tensor"
 
@@ -98,4 +99,67 @@ func closeRel(a, b, tol float64) bool {
 		return a == b
 	}
 	return math.Abs(a-b) <= tol*math.Max(1, math.Max(math.Abs(a), math.Abs(b)))
+}
+
+// GradRow's derivatives against central finite differences (gonum
+// diff/fd, step 1e-6) of the gonum stat/distuv log-densities (refColumn),
+// with respect to every decoder output and to each learned column's log
+// sigma, on records with missing entries; its log-probabilities equal
+// LogProbRow's.
+func TestColumnsGradRowMatchesFiniteDifferences(t *testing.T) {
+	rng := rand.New(rand.NewPCG(130, 131))
+	const n = 5
+	c := len(mixedSchema)
+	x, out, lsParam := mixedData(rng, n, true)
+	lik, err := losses.NewColumns("dec", mixedSchema, tensor.Float64)
+	if err != nil {
+		t.Fatal(err)
+	}
+	copy(lik.Params()[0].Value.Float64s(), lsParam)
+	ls := lik.LogSigmas()
+	lp, lp2 := make([]float64, c), make([]float64, c)
+	dOut, dLs := make([]float64, 9), make([]float64, c)
+	for i := 0; i < n; i++ {
+		row, xr := out[i*9:(i+1)*9], x[i*c:(i+1)*c]
+		sum, err := lik.GradRow(xr, row, ls, lp, dOut, dLs)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if want, _ := lik.LogProbRow(xr, row, ls, lp2); sum != want {
+			t.Errorf("record %d: GradRow sum %v, LogProbRow %v", i, sum, want)
+		}
+		// The record's total log-density as a function of the outputs
+		// and the two learned log sigmas (columns 1 and 3), by distuv.
+		total := func(v []float64) float64 {
+			var s float64
+			for j := 0; j < c; j++ {
+				logS := 0.0
+				if j == 1 || j == 3 {
+					logS = v[9+j/2] // v[9] column 1, v[10] column 3
+				}
+				s += refColumn(j, xr[j], v[:9], logS)
+			}
+			return s
+		}
+		at := append(append([]float64(nil), row...), ls[1], ls[3])
+		num := fd.Gradient(nil, total, at, &fd.Settings{Formula: fd.Central, Step: 1e-6})
+		for k := 0; k < 9; k++ {
+			if !closeRel(dOut[k], num[k], 1e-6) {
+				t.Errorf("record %d output %d: GradRow %v, finite difference %v", i, k, dOut[k], num[k])
+			}
+		}
+		for _, j := range []int{1, 3} {
+			if !closeRel(dLs[j], num[9+j/2], 1e-6) {
+				t.Errorf("record %d column %d: d/dlog sigma %v, finite difference %v", i, j, dLs[j], num[9+j/2])
+			}
+		}
+		for _, j := range []int{0, 2, 4, 5, 6} {
+			if dLs[j] != 0 {
+				t.Errorf("record %d column %d learns no sigma: d/dlog sigma %v, want 0", i, j, dLs[j])
+			}
+		}
+	}
+	if _, err := lik.GradRow(x[:c], out[:9], ls, lp, dOut[:8], dLs); !errors.Is(err, layers.ErrInvalidArgument) {
+		t.Errorf("short dOut: err = %v", err)
+	}
 }

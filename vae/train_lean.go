@@ -4,9 +4,10 @@ package vae
 //
 // For a model whose parts are all built in and simple enough (dense
 // encoder and decoder chains, the Gaussian head, the standard normal prior,
-// a Bernoulli or fixed-sigma Gaussian likelihood, with or without class
-// labels), Train runs each step on plain slices instead of a gorgonia
-// graph: the forward pass with the lean inference plan's compiled layers
+// any built-in likelihood: Bernoulli, Gaussian with a fixed or learned
+// sigma, or a columns likelihood over mixed records with missing entries;
+// with or without class labels), Train runs each step on plain slices
+// instead of a gorgonia graph: the forward pass with the lean inference plan's compiled layers
 // and formulas (plan.go), then the backward pass written out below, with
 // every buffer allocated once per Train call. The products go through
 // gorgonia's current BLAS (G.WhichBLAS), as the graphs' fused Dense ops
@@ -34,6 +35,7 @@ import (
 
 	"lowerbound.dev/internal/vecmath"
 	"lowerbound.dev/layers"
+	"lowerbound.dev/losses"
 	"lowerbound.dev/vae/dataset"
 )
 
@@ -137,7 +139,10 @@ type trainPlan[T float] struct {
 
 	shards []*trainShard[T]
 	ps     []*layers.Param
-	values []*tensor.Dense // the parameters' values, in the order of ps
+	// likParam is the likelihood's raw log sigmas (a learned Gaussian's or
+	// a columns likelihood's), nil when it has none.
+	likParam *layers.Param
+	values   []*tensor.Dense // the parameters' values, in the order of ps
 	// the step in progress, read by the shards
 	data       *dataset.Set
 	idx        []int
@@ -164,6 +169,13 @@ type trainShard[T float] struct {
 	gs          []*tensor.Dense
 	gMuW, gMuB  *tensor.Dense
 	gLvW, gLvB  *tensor.Dense
+	gLik        *tensor.Dense // the likelihood parameter's gradient
+	// lw holds the plan's per-call likelihood constants (prepare) and,
+	// for a columns likelihood, one record's float64 scratch; dOut64 and
+	// dLs are GradRow's outputs, dLsSum the shard's sum of dLs scaled.
+	lw          *leanWork[T]
+	dOut64      []float64
+	dLs, dLsSum []float64
 	encX        []T // (rows, encIn): records and one-hot labels
 	headW       []T // (in, 2D): the head's two weights side by side
 	headOut     []T // (rows, 2D): mu and the raw log-variance
@@ -189,10 +201,6 @@ func newTrainPlan[T float](p *planT[T], batch int,
 	switch {
 	case p.image:
 		return why("image input")
-	case p.cols != nil:
-		return why("a columns likelihood")
-	case p.lik != likBernoulli && p.lik != likGaussian:
-		return why("a likelihood with parameters")
 	case p.prior != priorStandard:
 		return why("a prior other than the standard normal")
 	}
@@ -207,6 +215,12 @@ func newTrainPlan[T float](p *planT[T], batch int,
 	}
 	t := &trainPlan[T]{p: p, k: p.k, gemm: gemm, agrad: agrad, bSum: bSum, bGrad: bGrad,
 		klDimAvg: make([]float64, p.d), coef: make([]float64, p.d)}
+	switch {
+	case p.lik == likLearned:
+		t.likParam = p.logSig
+	case p.cols != nil:
+		t.likParam = p.cols.learned
+	}
 	t.k.gemm = func(transA bool, m, n, k int, a []T, lda int, b []T, ldb int, c []T, ldc int) {
 		gemm(transA, false, m, n, k, a, lda, b, ldb, 1, c, ldc)
 	}
@@ -267,11 +281,17 @@ func (t *trainPlan[T]) newShard(first, rows int, first0 bool) *trainShard[T] {
 	h := &p.head
 	s.gMuW, s.gMuB, s.gLvW, s.gLvB = newGrad(h.muW), newGrad(h.muB), newGrad(h.lvW), newGrad(h.lvB)
 	s.dec = chain(p.dec, p.decIn)
+	if t.likParam != nil {
+		s.gLik = newGrad(t.likParam)
+	}
+	s.lw = p.newWork()
+	s.dOut64 = make([]float64, p.outW)
+	s.dLs, s.dLsSum = make([]float64, p.f), make([]float64, p.f)
 	d := p.d
 	maxW = max(maxW, h.in, 2*d, p.outW)
 	s.x = make([]T, rows*p.f)
 	s.xAny = s.x
-	if p.c > 0 {
+	if p.c > 0 || p.cols != nil {
 		s.encX = make([]T, rows*p.encIn)
 	}
 	s.headW, s.headOut, s.dHead = make([]T, h.in*2*d), make([]T, rows*2*d), make([]T, rows*2*d)
@@ -520,7 +540,23 @@ func (t *trainPlan[T]) forwardShard(s *trainShard[T]) {
 
 	// Encoder and head (plan.go's headRows, keeping the raw log-variance).
 	s.in = x
-	if c > 0 {
+	switch {
+	case p.cols != nil:
+		// The model-input layout (losses.Columns.EncodeRow) of the record
+		// in the model's dtype, as plan_columns.go's encodeColumnRows
+		// writes it.
+		s.in = s.encX[:rows*p.encIn]
+		cw, encW := s.lw.col, p.cols.encW
+		for i := 0; i < rows; i++ {
+			row := s.in[i*p.encIn : (i+1)*p.encIn]
+			widen(cw.x, x[i*f:(i+1)*f])
+			p.cols.c.EncodeRow(cw.x, cw.enc)
+			toT(row[:encW], cw.enc)
+			if c > 0 {
+				oneHot(row[encW:], t.data.Label(idx[i]))
+			}
+		}
+	case c > 0:
 		s.in = s.encX[:rows*p.encIn]
 		for i := 0; i < rows; i++ {
 			row := s.in[i*p.encIn : (i+1)*p.encIn]
@@ -562,6 +598,8 @@ func (t *trainPlan[T]) forwardShard(s *trainShard[T]) {
 	dOut := s.dA[:rows*ow]
 	s.ll = 0
 	g := T(-1 / t.n)
+	p.prepare(s.lw) // a learned or columns likelihood's log sigmas, as inference reads them
+	clear(s.dLsSum)
 	for r := 0; r < rows; r++ {
 		xr, or, dr := x[r*f:(r+1)*f], o[r*ow:(r+1)*ow], dOut[r*ow:(r+1)*ow]
 		switch p.lik {
@@ -574,6 +612,36 @@ func (t *trainPlan[T]) forwardShard(s *trainShard[T]) {
 			for j, m := range or {
 				dr[j] = gv * (xr[j] - m)
 			}
+		case likLearned:
+			// log p = -0.5*(log 2pi + lv + (x - m)^2 e^-lv), lv = 2 log sigma:
+			// d/dm = (x - m) e^-lv, d/dlog sigma = (x - m)^2 e^-lv - 1.
+			s.ll += p.logLikRow(s.lw, xr, or, nil)
+			for j, m := range or {
+				dv, prec := float64(xr[j])-float64(m), s.lw.likB[j]
+				dr[j] = T(float64(g) * dv * prec)
+				s.dLsSum[j] += float64(g) * (dv*dv*prec - 1)
+			}
+		case likColumns:
+			cw := s.lw.col
+			widen(cw.x, xr)
+			widen(cw.out, or)
+			ll, _ := p.cols.c.GradRow(cw.x, cw.out, cw.ls, cw.lp, s.dOut64, s.dLs) // lengths fixed at compile time
+			s.ll += ll
+			for k, v := range s.dOut64 {
+				dr[k] = T(float64(g) * v)
+			}
+			for j, v := range s.dLs {
+				s.dLsSum[j] += float64(g) * v
+			}
+		}
+	}
+	if s.gLik != nil {
+		// log sigma = MinLogSigma + softplus(r - MinLogSigma) of the raw
+		// parameter r (boundedLogSigma): d/dr = sigmoid(r - MinLogSigma).
+		// Columns that do not learn their sigma have dLs = 0.
+		r, gr := t.k.data(t.likParam.Value), t.k.data(s.gLik)
+		for j, v := range s.dLsSum {
+			gr[j] = T(v * sigmoid(float64(r[j]-T(losses.MinLogSigma))))
 		}
 	}
 	s.dz = t.backward(s, &s.dec, zin, dOut, rows, true)

@@ -114,6 +114,15 @@ func TestLeanTrainMatchesGraph(t *testing.T) {
 			c.Capacity = schedule.Capacity{Gamma: 2, Max: 3, Steps: 8}
 			return c
 		}},
+		{"learned noise", func() *Model {
+			// A likelihood of its own for each model: it holds a parameter.
+			return mlp(MLPConfig{Activation: layers.Tanh, Likelihood: learnedNoise(t, 12)})()
+		}, reals, nil},
+		{"columns with missing entries", columnsModel(t, 0, 12), mixedLeanSet(t, 45, 0), nil},
+		{"conditional columns, two shards", columnsModel(t, 3, 13), mixedLeanSet(t, 129, 3), func(c TrainConfig) TrainConfig {
+			c.BatchSize = 64
+			return c
+		}},
 		// Batches of 64 and more run as two shards; 129 records in
 		// batches of 64 end with a batch of one, whose first shard is
 		// empty.
@@ -196,41 +205,65 @@ func TestLeanTrainMatchesGraphFloat32(t *testing.T) {
 // The lean path's gradients against central finite differences of its own
 // loss (gonum diff/fd, step 1e-6, float64), with the noise held fixed: an
 // independent check of every derivative written out in train_lean.go, for
-// a conditional model with free bits and a capacity term switched on, at
-// a point where some dimensions sit below the free-bits floor and some
-// above it (the floor's kink is avoided: no dimension is within 1e-3 of
+// conditional Bernoulli models, a learned-noise Gaussian and a
+// conditional columns model with missing entries, with free bits and a
+// capacity term switched on, at a point where some dimensions sit below
+// the free-bits floor and some above it (the floor's kink is avoided: no dimension is within 1e-3 of
 // it, see the check below).
 func TestLeanTrainGradientsFiniteDifference(t *testing.T) {
-	// The floors put at least one dimension on each side (seen in the log).
-	for _, tc := range []struct {
-		act    layers.Activation
-		lambda float64
-	}{{layers.Tanh, 0.095}, {layers.ELU, 1}, {layers.Softplus, 1}} {
-		act := tc.act
-		t.Run(string(act), func(t *testing.T) {
+	binary := func(t *testing.T) *dataset.Set {
+		rng := rand.New(rand.NewPCG(5, 6))
+		xs := make([]float64, 4*7)
+		for i := range xs {
+			xs[i] = float64(rng.IntN(2))
+		}
+		set, err := dataset.New(xs, 4, 7)
+		if err == nil {
+			set, err = set.WithLabels([]int{0, 1, 1, 0}, 2)
+		}
+		if err != nil {
+			t.Fatal(err)
+		}
+		return set
+	}
+	mlp := func(act layers.Activation) func() *Model {
+		return func() *Model {
 			m, err := NewMLP(MLPConfig{Input: 7, Hidden: []int{6, 5}, Latent: 3, Activation: act, Classes: 2, Dtype: tensor.Float64, Seed: 2})
 			if err != nil {
 				t.Fatal(err)
 			}
+			return m
+		}
+	}
+	learned := func() *Model {
+		m, err := NewMLP(MLPConfig{Input: 7, Hidden: []int{6}, Latent: 3, Activation: layers.Tanh, Likelihood: learnedNoise(t, 7), Dtype: tensor.Float64, Seed: 4})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return m
+	}
+	// The floors put at least one dimension on each side (seen in the log).
+	for _, tc := range []struct {
+		name   string
+		mk     func() *Model
+		data   func(t *testing.T) *dataset.Set
+		lambda float64
+	}{
+		{"tanh", mlp(layers.Tanh), binary, 0.095},
+		{"elu", mlp(layers.ELU), binary, 1},
+		{"softplus", mlp(layers.Softplus), binary, 1},
+		{"learned noise", learned, func(t *testing.T) *dataset.Set { return realSet(t, 4, 7, 3) }, 0.5},
+		{"conditional columns", columnsModel(t, 2, 6), func(t *testing.T) *dataset.Set { return mixedLeanSet(t, 4, 2) }, 0.2},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			m, set := tc.mk(), tc.data(t)
 			lt, err := m.newLeanTrainer(4)
 			if err != nil {
 				t.Fatal(err)
 			}
 			tp := lt.(*trainPlan[float64])
-			rng := rand.New(rand.NewPCG(5, 6))
-			xs := make([]float64, 4*7)
-			for i := range xs {
-				xs[i] = float64(rng.IntN(2))
-			}
-			set, err := dataset.New(xs, 4, 7)
-			if err == nil {
-				set, err = set.WithLabels([]int{0, 1, 1, 0}, 2)
-			}
-			if err != nil {
-				t.Fatal(err)
-			}
 			eps := tensor.New(tensor.WithShape(4, 3), tensor.Of(tensor.Float64))
-			if err := layers.FillNormal(rng, eps); err != nil {
+			if err := layers.FillNormal(rand.New(rand.NewPCG(7, 8)), eps); err != nil {
 				t.Fatal(err)
 			}
 			sc := stepScalars{beta: 0.8, freeBits: true, lambda: tc.lambda, capacity: true, gamma: 0.7, target: 0.2}
@@ -292,6 +325,10 @@ func TestLeanTrainFallsBack(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	diag, err := priors.NewDiagonal("prior", 2, tensor.Float64)
+	if err != nil {
+		t.Fatal(err)
+	}
 	for _, tc := range []struct {
 		name string
 		cfg  MLPConfig
@@ -299,7 +336,8 @@ func TestLeanTrainFallsBack(t *testing.T) {
 	}{
 		{"standard", MLPConfig{}, true},
 		{"vamp prior", MLPConfig{MakePrior: vamp}, false},
-		{"learned noise", MLPConfig{Likelihood: learned}, false},
+		{"learned noise", MLPConfig{Likelihood: learned}, true},
+		{"diagonal prior", MLPConfig{Prior: diag}, false},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			c := tc.cfg
@@ -357,4 +395,80 @@ func TestLeanTrainSameBitsOnAnyCores(t *testing.T) {
 			t.Fatalf("value %d: %v on one core, %v on two", i, one[i], two[i])
 		}
 	}
+}
+
+func learnedNoise(t *testing.T, f int) losses.Likelihood {
+	t.Helper()
+	l, err := losses.NewLearnedGaussian("noise", f, tensor.Float64)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Raw log sigmas away from 0, so that their gradients are exercised
+	// where the bound's slope is not one.
+	for i, v := 0, l.Params()[0].Value.Float64s(); i < len(v); i++ {
+		v[i] = -0.3 + 0.05*float64(i)
+	}
+	return l
+}
+
+// leanSchema has a column of every kind, two learning their sigma.
+var leanSchema = []losses.Column{
+	{Name: "temp", Kind: losses.ColumnReal, LearnSigma: true},
+	{Name: "press", Kind: losses.ColumnReal, Sigma: 0.7},
+	{Name: "flow", Kind: losses.ColumnPositive, LearnSigma: true},
+	{Name: "starts", Kind: losses.ColumnCount},
+	{Name: "open", Kind: losses.ColumnBinary},
+	{Name: "mode", Kind: losses.ColumnCategorical, Categories: 3},
+}
+
+// columnsModel returns a maker of float64 MLP models over leanSchema.
+func columnsModel(t *testing.T, classes int, seed uint64) func() *Model {
+	return func() *Model {
+		lik, err := losses.NewColumns("lik", leanSchema, tensor.Float64)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for i, v := 0, lik.Params()[0].Value.Float64s(); i < len(v); i++ {
+			v[i] = 0.2 - 0.1*float64(i)
+		}
+		m, err := NewMLP(MLPConfig{Input: len(leanSchema), Hidden: []int{9, 7}, Latent: 3, Activation: layers.Tanh,
+			Likelihood: lik, Classes: classes, Dtype: tensor.Float64, Seed: seed})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return m
+	}
+}
+
+// mixedLeanSet returns n records for leanSchema, about 15% of entries
+// missing, with labels when classes > 0.
+func mixedLeanSet(t *testing.T, n, classes int) *dataset.Set {
+	t.Helper()
+	rng := rand.New(rand.NewPCG(uint64(n), 3))
+	x := make([]float64, 0, n*len(leanSchema))
+	for i := 0; i < n; i++ {
+		z := rng.NormFloat64()
+		row := []float64{z + 0.3*rng.NormFloat64(), 2 - z + 0.5*rng.NormFloat64(), math.Exp(0.5*z + 0.2*rng.NormFloat64()),
+			float64(rng.IntN(4)), float64(rng.IntN(2)), float64(rng.IntN(3))}
+		for j := range row {
+			if rng.Float64() < 0.15 {
+				row[j] = math.NaN()
+			}
+		}
+		x = append(x, row...)
+	}
+	s, err := dataset.NewMissing(x, n, len(leanSchema))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if classes > 0 {
+		labels := make([]int, n)
+		for i := range labels {
+			labels[i] = i % classes
+		}
+		if s, err = s.WithLabels(labels, classes); err != nil {
+			t.Fatal(err)
+		}
+	}
+	return s
 }
