@@ -177,22 +177,12 @@ func (*bernoulliGradOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Valu
 	return out, nil
 }
 
-// x - sigmoid(l) is written as (x - 1) + sigmoid(-l) for l >= 0 and as
-// x - sigmoid(l) otherwise: the sigmoid is then always of -|l|, at most
-// 1/2, and the form keeps precision where sigmoid(l) is close to 1.
-
+// bernoulliBackward64 sets out[i] = g[i]*(x[i] - sigmoid(l[i])), in the
+// form of vecmath.BernoulliDiff64.
 func bernoulliBackward64(out, x, l, g []float64) {
 	x, g, out = x[:len(l)], g[:len(l)], out[:len(l)]
 	for i, li := range l {
-		var d float64
-		if li >= 0 {
-			e := math.Exp(-li)
-			d = (x[i] - 1) + e/(1+e)
-		} else {
-			e := math.Exp(li)
-			d = x[i] - e/(1+e)
-		}
-		out[i] = g[i] * d
+		out[i] = g[i] * vecmath.BernoulliDiff64(x[i], li)
 	}
 }
 

@@ -16,7 +16,12 @@ package losses
 // support gives -Inf. Wrong lengths return an error wrapping
 // layers.ErrInvalidArgument.
 func (c *Columns) LogProbRow(x, out, logSigmas, lp []float64) (float64, error) {
-	const where = "losses.Columns.LogProbRow"
+	return c.rowTerms("losses.Columns.LogProbRow", x, out, logSigmas, lp, nil, nil)
+}
+
+// rowTerms checks the lengths and runs columnTerms on one record (dOut and
+// dLs nil for the log-probabilities alone), returning their sum.
+func (c *Columns) rowTerms(where string, x, out, logSigmas, lp, dOut, dLs []float64) (float64, error) {
 	if c == nil || c.cols == nil {
 		return 0, argError(where, "c", "not made by NewColumns")
 	}
@@ -30,8 +35,12 @@ func (c *Columns) LogProbRow(x, out, logSigmas, lp []float64) (float64, error) {
 		return 0, argError(where, "logSigmas", "%d values, want one per column (%d)", len(logSigmas), nc)
 	case len(lp) != nc:
 		return 0, argError(where, "lp", "%d values, want one per column (%d)", len(lp), nc)
+	case dOut != nil && len(dOut) != c.width:
+		return 0, argError(where, "dOut", "%d values, want OutputWidth (%d)", len(dOut), c.width)
+	case dOut != nil && len(dLs) != nc:
+		return 0, argError(where, "dLogSigmas", "%d values, want one per column (%d)", len(dLs), nc)
 	}
-	columnTerms(c.cols, c.offs, x, out, logSigmas, lp, nil, nil)
+	columnTerms(c.cols, c.offs, x, out, logSigmas, lp, dOut, dLs)
 	var s float64
 	for _, v := range lp {
 		s += v
@@ -72,29 +81,8 @@ func (c *Columns) MeanRow(out, logSigmas, dst []float64) error {
 // gradients use (the same function computes both). It allocates nothing;
 // wrong lengths return an error wrapping layers.ErrInvalidArgument.
 func (c *Columns) GradRow(x, out, logSigmas, lp, dOut, dLogSigmas []float64) (float64, error) {
-	const where = "losses.Columns.GradRow"
-	if c == nil || c.cols == nil {
-		return 0, argError(where, "c", "not made by NewColumns")
+	if dOut == nil {
+		return 0, argError("losses.Columns.GradRow", "dOut", "nil")
 	}
-	nc := len(c.cols)
-	switch {
-	case len(x) != nc:
-		return 0, argError(where, "x", "%d values, want one per column (%d)", len(x), nc)
-	case len(out) != c.width:
-		return 0, argError(where, "out", "%d values, want OutputWidth (%d)", len(out), c.width)
-	case len(logSigmas) != nc:
-		return 0, argError(where, "logSigmas", "%d values, want one per column (%d)", len(logSigmas), nc)
-	case len(lp) != nc:
-		return 0, argError(where, "lp", "%d values, want one per column (%d)", len(lp), nc)
-	case len(dOut) != c.width:
-		return 0, argError(where, "dOut", "%d values, want OutputWidth (%d)", len(dOut), c.width)
-	case len(dLogSigmas) != nc:
-		return 0, argError(where, "dLogSigmas", "%d values, want one per column (%d)", len(dLogSigmas), nc)
-	}
-	columnTerms(c.cols, c.offs, x, out, logSigmas, lp, dOut, dLogSigmas)
-	var s float64
-	for _, v := range lp {
-		s += v
-	}
-	return s, nil
+	return c.rowTerms("losses.Columns.GradRow", x, out, logSigmas, lp, dOut, dLogSigmas)
 }

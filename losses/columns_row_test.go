@@ -18,16 +18,9 @@ import (
 // runs, against gonum stat/distuv (refColumn: Normal, LogNormal, Poisson,
 // Bernoulli, Categorical) and distuv's means, with missing entries.
 func TestColumnsRowMatchGonum(t *testing.T) {
-	rng := rand.New(rand.NewPCG(120, 121))
 	const n = 6
 	c := len(mixedSchema)
-	x, out, lsParam := mixedData(rng, n, true)
-	lik, err := losses.NewColumns("dec", mixedSchema, tensor.Float64)
-	if err != nil {
-		t.Fatal(err)
-	}
-	copy(lik.Params()[0].Value.Float64s(), lsParam)
-	ls := lik.LogSigmas() // the bounded learned values, log Sigma of fixed columns
+	lik, x, out, lsParam, ls := rowCase(t, 120, n)
 	lp, mean := make([]float64, c), make([]float64, c)
 	for i := 0; i < n; i++ {
 		row, xr := out[i*9:(i+1)*9], x[i*c:(i+1)*c]
@@ -107,16 +100,9 @@ func closeRel(a, b, tol float64) bool {
 // sigma, on records with missing entries; its log-probabilities equal
 // LogProbRow's.
 func TestColumnsGradRowMatchesFiniteDifferences(t *testing.T) {
-	rng := rand.New(rand.NewPCG(130, 131))
 	const n = 5
 	c := len(mixedSchema)
-	x, out, lsParam := mixedData(rng, n, true)
-	lik, err := losses.NewColumns("dec", mixedSchema, tensor.Float64)
-	if err != nil {
-		t.Fatal(err)
-	}
-	copy(lik.Params()[0].Value.Float64s(), lsParam)
-	ls := lik.LogSigmas()
+	lik, x, out, _, ls := rowCase(t, 130, n)
 	lp, lp2 := make([]float64, c), make([]float64, c)
 	dOut, dLs := make([]float64, 9), make([]float64, c)
 	for i := 0; i < n; i++ {
@@ -162,4 +148,19 @@ func TestColumnsGradRowMatchesFiniteDifferences(t *testing.T) {
 	if _, err := lik.GradRow(x[:c], out[:9], ls, lp, dOut[:8], dLs); !errors.Is(err, layers.ErrInvalidArgument) {
 		t.Errorf("short dOut: err = %v", err)
 	}
+}
+
+// rowCase returns a float64 Columns over mixedSchema with random raw log
+// sigmas, n records with missing entries and decoder outputs for them, the
+// raw parameters and LogSigmas (the bounded learned values, log Sigma of
+// fixed columns).
+func rowCase(t *testing.T, seed uint64, n int) (lik *losses.Columns, x, out, lsParam, ls []float64) {
+	t.Helper()
+	x, out, lsParam = mixedData(rand.New(rand.NewPCG(seed, seed+1)), n, true)
+	lik, err := losses.NewColumns("dec", mixedSchema, tensor.Float64)
+	if err != nil {
+		t.Fatal(err)
+	}
+	copy(lik.Params()[0].Value.Float64s(), lsParam)
+	return lik, x, out, lsParam, lik.LogSigmas()
 }

@@ -165,19 +165,24 @@ func BernoulliRowSum64(x, l []float64) float64 {
 }
 
 // BernoulliGradRow64 is BernoulliGradRow32 in float64 with package math:
-// out[i] = g*(x[i] - sigmoid(l[i])), the sigmoid formed on the side of
-// zero where its exponential cannot overflow.
+// out[i] = g*BernoulliDiff64(x[i], l[i]).
 func BernoulliGradRow64(out, x, l []float64, g float64) {
 	x, out = x[:len(l)], out[:len(l)]
 	for i, li := range l {
-		var d float64
-		if li >= 0 {
-			e := math.Exp(-li)
-			d = (x[i] - 1) + e/(1+e)
-		} else {
-			e := math.Exp(li)
-			d = x[i] - e/(1+e)
-		}
-		out[i] = g * d
+		out[i] = g * BernoulliDiff64(x[i], li)
 	}
+}
+
+// BernoulliDiff64 returns x - sigmoid(l), the derivative of x*l -
+// softplus(l) with respect to l, written as (x - 1) + sigmoid(-l) for
+// l >= 0 and as x - sigmoid(l) otherwise: the sigmoid is then always of
+// -|l|, at most 1/2, and the form keeps precision where sigmoid(l) is
+// close to 1.
+func BernoulliDiff64(x, l float64) float64 {
+	if l >= 0 {
+		e := math.Exp(-l)
+		return (x - 1) + e/(1+e)
+	}
+	e := math.Exp(l)
+	return x - e/(1+e)
 }
