@@ -169,37 +169,59 @@ func TestLeanTrainMatchesGraph(t *testing.T) {
 
 // In float32 the lean path uses the fast kernels the graphs' fused ops use
 // (Bernoulli, tanh) and forms the KL and sampler terms in float64 where
-// the graphs stay in float32, so the two agree to float32 rounding: after
+// the graphs stay in float32 (the columns likelihood is float64 in both), so the two agree to float32 rounding: after
 // six Adam steps with learning rate 1e-3 the parameters (of order 0.1-1)
 // differ by a few ulps. 1e-5 is far below what one wrong derivative moves
 // a parameter (up to the learning rate, 1e-3, per step).
 func TestLeanTrainMatchesGraphFloat32(t *testing.T) {
-	data := binarySet(t, 60, 30, 3)
-	mk := func() *Model {
+	bernoulli := func() *Model {
 		m, err := NewMLP(MLPConfig{Input: 30, Hidden: []int{40, 40}, Latent: 5, Activation: layers.Tanh, Seed: 5})
 		if err != nil {
 			t.Fatal(err)
 		}
 		return m
 	}
-	g, l, gh, lh := trainBoth(t, mk, data, TrainConfig{Epochs: 2, BatchSize: 20, Seed: 4})
-	for i := range gh {
-		if d := math.Abs(gh[i].Loss - lh[i].Loss); d > 1e-5*math.Abs(gh[i].Loss) {
-			t.Errorf("epoch %d: loss %v on the lean path, %v on the graphs", i+1, lh[i].Loss, gh[i].Loss)
+	columns := func() *Model {
+		lik, err := losses.NewColumns("lik", leanSchema, tensor.Float32)
+		if err != nil {
+			t.Fatal(err)
 		}
+		m, err := NewMLP(MLPConfig{Input: len(leanSchema), Hidden: []int{9, 7}, Latent: 3, Activation: layers.Tanh,
+			Likelihood: lik, Classes: 3, Seed: 13})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return m
 	}
-	worst := 0.0
-	for i, gp := range g.Params() {
-		gw, lw := gp.Value.Data().([]float32), l.Params()[i].Value.Data().([]float32)
-		for j := range gw {
-			d := math.Abs(float64(gw[j] - lw[j]))
-			worst = max(worst, d)
-			if d > 1e-5 {
-				t.Fatalf("%s[%d]: %v on the lean path, %v on the graphs", gp.Name, j, lw[j], gw[j])
+	for _, tc := range []struct {
+		name string
+		mk   func() *Model
+		data *dataset.Set
+	}{
+		{"bernoulli", bernoulli, binarySet(t, 60, 30, 3)},
+		{"conditional columns", columns, mixedLeanSet(t, 60, 3)},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			g, l, gh, lh := trainBoth(t, tc.mk, tc.data, TrainConfig{Epochs: 2, BatchSize: 20, Seed: 4})
+			for i := range gh {
+				if d := math.Abs(gh[i].Loss - lh[i].Loss); d > 1e-5*math.Abs(gh[i].Loss) {
+					t.Errorf("epoch %d: loss %v on the lean path, %v on the graphs", i+1, lh[i].Loss, gh[i].Loss)
+				}
 			}
-		}
+			worst := 0.0
+			for i, gp := range g.Params() {
+				gw, lw := gp.Value.Float32s(), l.Params()[i].Value.Float32s()
+				for j := range gw {
+					d := math.Abs(float64(gw[j] - lw[j]))
+					worst = max(worst, d)
+					if d > 1e-5 {
+						t.Fatalf("%s[%d]: %v on the lean path, %v on the graphs", gp.Name, j, lw[j], gw[j])
+					}
+				}
+			}
+			t.Logf("largest parameter difference %.2g", worst)
+		})
 	}
-	t.Logf("largest parameter difference %.2g", worst)
 }
 
 // The lean path's gradients against central finite differences of its own
