@@ -9,6 +9,7 @@ import (
 	"gorgonia.org/tensor"
 
 	"lowerbound.dev/layers"
+	"lowerbound.dev/vae/dataset"
 )
 
 // errBenchDone stops a benchmark's training run once the timed steps are
@@ -67,11 +68,29 @@ func benchTrainStep(b *testing.B, graph bool) {
 	b.ReportMetric(float64(b.N*100)/b.Elapsed().Seconds(), "records/s")
 }
 
-// BenchmarkLeanStep runs the lean path's step and update alone, on the
-// same model and batch: allocs/op here is exactly the steady-state step's
-// (0), with no per-epoch work to amortise.
+// BenchmarkLeanStep runs the lean path's step and update alone, batch
+// 100, on both benchmark models (Burda et al. 2016's 784-200-200-50 tanh
+// and the 784-400-20 ReLU model of the other benchmarks): allocs/op here is
+// exactly the steady-state step's (0), with no per-epoch work to amortise.
 func BenchmarkLeanStep(b *testing.B) {
-	m, data := benchModel(b), benchData(b, 100)
+	for _, bm := range []struct {
+		name string
+		cfg  MLPConfig
+	}{
+		{"784-200-200-50", MLPConfig{Input: 784, Hidden: []int{200, 200}, Latent: 50, Activation: layers.Tanh, Seed: 1}},
+		{"784-400-20", MLPConfig{Input: 784, Hidden: []int{400}, Latent: 20, Seed: 1}},
+	} {
+		b.Run(bm.name, func(b *testing.B) {
+			m, err := NewMLP(bm.cfg)
+			if err != nil {
+				b.Fatal(err)
+			}
+			benchLeanStep(b, m, benchData(b, 100))
+		})
+	}
+}
+
+func benchLeanStep(b *testing.B, m *Model, data *dataset.Set) {
 	lt, err := m.newLeanTrainer(100)
 	if err != nil {
 		b.Fatal(err)
@@ -83,7 +102,7 @@ func BenchmarkLeanStep(b *testing.B) {
 	for i := range idx {
 		idx[i] = i
 	}
-	eps := tensor.New(tensor.WithShape(100, 20), tensor.Of(tensor.Float32))
+	eps := tensor.New(tensor.WithShape(100, m.latent), tensor.Of(tensor.Float32))
 	rng := rand.New(rand.NewPCG(1, 2))
 	sc := stepScalars{beta: 1}
 	step := func() {
