@@ -39,8 +39,24 @@ import (
 	"lowerbound.dev/vae/dataset"
 )
 
-// errNotLeanTrain is wrapped by the reasons a model trains on the graphs.
-var errNotLeanTrain = errors.New("vae: model not supported by the lean training path")
+// ErrNotLeanTrain is wrapped by the errors that say why a model trains on
+// gorgonia graphs instead of the lean training path (see LeanPaths).
+var ErrNotLeanTrain = errors.New("vae: model not supported by the lean training path")
+
+// LeanPaths reports which of the model's work runs without gorgonia
+// graphs: its inference methods (Encode, Score, Evaluate, a Scorer, ...)
+// when inference is nil, and Train when training is nil. A non-nil error
+// names the part that keeps that work on the graphs and wraps ErrNotLean or
+// ErrNotLeanTrain. The graph paths give the same results, more slowly.
+func (m *Model) LeanPaths() (inference, training error) {
+	if m.lean == nil {
+		return m.leanWhy, fmt.Errorf("%w: %v", ErrNotLeanTrain, m.leanWhy)
+	}
+	if p := m.lean.p32; p != nil {
+		return nil, trainable(p)
+	}
+	return nil, trainable(m.lean.p64)
+}
 
 // leanTrainer is one Train call's lean step: the plan it runs and every
 // buffer a step needs, sized for the batch.
@@ -76,11 +92,11 @@ type stepScalars struct {
 }
 
 // newLeanTrainer returns the lean trainer of m for batches of up to batch
-// records, or an error wrapping errNotLeanTrain that says why the model
+// records, or an error wrapping ErrNotLeanTrain that says why the model
 // trains on the graphs.
 func (m *Model) newLeanTrainer(batch int) (leanTrainer, error) {
 	if m.lean == nil {
-		return nil, fmt.Errorf("%w: %v", errNotLeanTrain, m.leanWhy)
+		return nil, fmt.Errorf("%w: %v", ErrNotLeanTrain, m.leanWhy)
 	}
 	if p := m.lean.p32; p != nil {
 		t, err := newTrainPlan(p, batch, func(tA, tB bool, mm, n, k int, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
@@ -195,23 +211,8 @@ type trainShard[T float] struct {
 func newTrainPlan[T float](p *planT[T], batch int,
 	gemm func(tA, tB bool, m, n, k int, a []T, lda int, b []T, ldb int, beta T, c []T, ldc int),
 	agrad func(a layers.Activation, d, y, g []T), bSum func(x, l []T) float64, bGrad func(out, x, l []T, g T)) (*trainPlan[T], error) {
-	why := func(format string, a ...any) (*trainPlan[T], error) {
-		return nil, fmt.Errorf("%w: %s", errNotLeanTrain, fmt.Sprintf(format, a...))
-	}
-	switch {
-	case p.image:
-		return why("image input")
-	case p.prior != priorStandard:
-		return why("a prior other than the standard normal")
-	}
-	for _, ops := range [][]leanOp[T]{p.enc, p.dec} {
-		for _, op := range ops {
-			switch op.(type) {
-			case *denseOp[T], *actOp[T]:
-			default:
-				return why("a %T step", op)
-			}
-		}
+	if err := trainable(p); err != nil {
+		return nil, err
 	}
 	t := &trainPlan[T]{p: p, k: p.k, gemm: gemm, agrad: agrad, bSum: bSum, bGrad: bGrad,
 		klDimAvg: make([]float64, p.d), coef: make([]float64, p.d)}
@@ -235,18 +236,49 @@ func newTrainPlan[T float](p *planT[T], batch int,
 		first, last := i*batch/shards, (i+1)*batch/shards
 		t.shards = append(t.shards, t.newShard(first, last-first, i == 0))
 	}
-	// Every parameter of the model must be one this path trains.
-	mine := map[*layers.Param]bool{}
 	for _, prm := range t.ps {
-		mine[prm] = true
 		t.values = append(t.values, prm.Value)
+	}
+	return t, nil
+}
+
+// trainable returns nil when the lean training path runs p's model, else
+// an error wrapping ErrNotLeanTrain that says why it does not.
+func trainable[T float](p *planT[T]) error {
+	why := func(format string, a ...any) error {
+		return fmt.Errorf("%w: %s", ErrNotLeanTrain, fmt.Sprintf(format, a...))
+	}
+	switch {
+	case p.image:
+		return why("image input")
+	case p.prior != priorStandard:
+		return why("a prior other than the standard normal")
+	}
+	// Every parameter of the model must be one this path trains.
+	mine := map[*layers.Param]bool{p.head.muW: true, p.head.muB: true, p.head.lvW: true, p.head.lvB: true}
+	for _, ops := range [][]leanOp[T]{p.enc, p.dec} {
+		for _, op := range ops {
+			switch o := op.(type) {
+			case *denseOp[T]:
+				mine[o.w], mine[o.b] = true, true
+			case *actOp[T]:
+			default:
+				return why("a %T step", op)
+			}
+		}
+	}
+	switch {
+	case p.lik == likLearned:
+		mine[p.logSig] = true
+	case p.cols != nil && p.cols.learned != nil:
+		mine[p.cols.learned] = true
 	}
 	for _, prm := range p.m.params {
 		if !mine[prm] {
-			return why("parameter %q belongs to no dense layer or head", prm.Name)
+			return why("parameter %q belongs to no dense layer, head or likelihood", prm.Name)
 		}
 	}
-	return t, nil
+	return nil
 }
 
 // newShard allocates a shard of up to rows records; the first one also

@@ -372,8 +372,11 @@ func TestLeanTrainFallsBack(t *testing.T) {
 			if tc.lean != (why == nil) {
 				t.Fatalf("lean trainer: %v, want lean %v", why, tc.lean)
 			}
-			if why != nil && !errors.Is(why, errNotLeanTrain) {
-				t.Errorf("reason %v does not wrap errNotLeanTrain", why)
+			if inf, tr := m.LeanPaths(); inf != nil || (tr == nil) != tc.lean {
+				t.Errorf("LeanPaths: inference %v, training %v; want inference lean, training lean %v", inf, tr, tc.lean)
+			}
+			if why != nil && !errors.Is(why, ErrNotLeanTrain) {
+				t.Errorf("reason %v does not wrap ErrNotLeanTrain", why)
 			}
 			if _, err := m.Train(context.Background(), data, TrainConfig{Epochs: 1, BatchSize: 5}); err != nil {
 				t.Fatal(err)

@@ -189,6 +189,11 @@ func run(mf modelFlags, epochs int, seed uint64, threads, k int, dtypeName strin
 		return err
 	}
 	fmt.Printf("lowerbound mnistbench: %s, %d thread(s), %s %s, batch %d, prior %s, BLAS %s\n", dtypeName, threads, modelName, mf.activation, mf.batch, priorName, blasName)
+	trainPath := "lean training path"
+	if _, why := m.LeanPaths(); why != nil {
+		trainPath = "graphs (" + why.Error() + ")"
+	}
+	fmt.Printf("training on the %s\n", trainPath)
 	sum := summary{Epochs: epochs, Seed: seed, Threads: threads, Dtype: dtypeName, K: k, Model: modelName, Activation: mf.activation, Batch: mf.batch, Prior: priorName, BLAS: blasName}
 	_, err = m.Train(ctx, train, vae.TrainConfig{
 		Epochs: epochs, BatchSize: mf.batch, LearnRate: 1e-3, Seed: seed,
