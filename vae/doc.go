@@ -26,17 +26,19 @@
 // head, the standard normal prior and any built-in likelihood (Bernoulli,
 // Gaussian with a fixed or learned sigma, or a losses.Columns over mixed
 // records with missing entries), with or without class labels, trains on
-// the lean training path: each step runs on plain slices with buffers allocated once per
-// Train call (no allocation in a steady-state step), the forward pass with
-// the lean inference plan's formulas and the backward pass written out,
-// checked against the graph path (gorgonia's symbolic differentiation) and
-// against finite differences. A batch of 64 or more records runs as two
-// halves on two goroutines when GOMAXPROCS allows, the gradients summed in
-// a fixed order, so a run gives the same bits on any number of cores. Any
-// other model (convolutions, priors other than the standard normal,
-// user-written parts) trains on one gorgonia graph, built for the configured batch size and reused for every
-// step: the inputs are tensors the trainer refills, and a ragged last batch
-// is padded and masked. Both paths minimise the same objective per record:
+// the lean training path: each step runs on plain slices with buffers
+// allocated once per Train call (no allocation in a steady-state step),
+// the forward pass with the lean inference plan's formulas and the
+// backward pass written out, checked against the graph path (gorgonia's
+// symbolic differentiation) and against finite differences. A batch of 64
+// or more records runs as two halves on two goroutines when GOMAXPROCS
+// allows, the gradients summed in a fixed order, so a run gives the same
+// bits on any number of cores. Any other model (convolutions, priors other
+// than the standard normal, user-written parts) trains on one gorgonia
+// graph, built for the configured batch size and reused for every step:
+// the inputs are tensors the trainer refills, and a ragged last batch is
+// padded and masked. Model.LeanPaths says which path a model takes, and
+// why. Both paths minimise the same objective per record:
 //
 //	-E_q[log p(x|z)] + beta(step) * KL(q(z|x) || p(z))
 //
