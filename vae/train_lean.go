@@ -7,21 +7,22 @@ package vae
 // any built-in likelihood: Bernoulli, Gaussian with a fixed or learned
 // sigma, or a columns likelihood over mixed records with missing entries;
 // with or without class labels), Train runs each step on plain slices
-// instead of a gorgonia graph: the forward pass with the lean inference plan's compiled layers
-// and formulas (plan.go), then the backward pass written out below, with
-// every buffer allocated once per Train call. The products go through
-// gorgonia's current BLAS (G.WhichBLAS), as the graphs' fused Dense ops
-// do, so G.Use still chooses the library.
+// instead of a gorgonia graph: the forward pass with the lean inference
+// plan's compiled layers and formulas (plan.go), then the backward pass
+// written out below, with every buffer allocated once per Train call. The
+// products go through gorgonia's current BLAS (G.WhichBLAS), as the
+// graphs' fused Dense ops do, so G.Use still chooses the library.
 //
 // Every derivative is one of the graph path's, taken from the same code
 // where the graphs have a kernel for it (layers.Activation's gradients,
-// vecmath's Bernoulli kernels) and written out where the graphs compose
-// gorgonia's elementwise ops (the sampler, the soft clamp, the KL, free
-// bits, capacity). train_lean_test.go checks the result against the
-// graph path (gorgonia's symbolic differentiation) step for step, and the
-// gradients against central finite differences (gonum diff/fd).
+// vecmath's Bernoulli kernels, losses.Columns.GradRow) and written out
+// where the graphs compose gorgonia's elementwise ops (the sampler, the
+// soft clamp, the KL, free bits, capacity, the learned Gaussian).
+// train_lean_test.go checks the result against the graph path (gorgonia's
+// symbolic differentiation) step for step, and the gradients against
+// central finite differences (gonum diff/fd).
 //
-// Any other model trains on the graphs; leanTrainWhy says why.
+// Any other model trains on the graphs; LeanPaths says why.
 
 import (
 	"errors"
@@ -354,7 +355,9 @@ func (t *trainPlan[T]) close() {
 // The phases of a step, run on every shard: the forward pass and the
 // decoder's backward pass; the rest of the backward pass (which needs the
 // whole batch's KL for free bits and capacity); adding the other shards'
-// gradients into shard 0's, each shard taking every other parameter.
+// gradients into shard 0's (only before clipping: otherwise the optimiser's
+// pass does it), shard i taking the i-th run of every gradient's values;
+// the optimiser's pass, the same way.
 const (
 	phaseForward = iota
 	phaseBackward
